@@ -416,3 +416,26 @@ func BenchmarkEvaluate(b *testing.B) {
 		calc.Evaluate(req)
 	}
 }
+
+func TestEvaluateDuplicateAnalyte(t *testing.T) {
+	calc := NewCalculator(Builtin())
+	a, b := cr("1.0", "mg/dL"), cr("1.4", "mg/dL")
+	b.SourceID = "cr2"
+	o := calc.Evaluate(Request{AgeYears: ptr(50.0), Sex: SexMale, Measurements: []Measurement{a, b}, Policy: preset(t, "nkf-asn-2021")})
+	require.Empty(t, o.Results)
+	require.Equal(t, []Reason{ReasonInputDuplicate, ReasonInputDuplicate}, codes(o))
+}
+
+// Whatever an equation returns, only finite positive values are reported.
+func TestEvaluateNeverPrintsNonFinite(t *testing.T) {
+	for _, bad := range []float64{math.NaN(), math.Inf(1), 0, -3} {
+		e := ckdEPI2021Cr()
+		e.Compute = func(Inputs) (float64, []Step, error) { return bad, nil, nil }
+		reg, err := NewRegistry(e)
+		require.NoError(t, err)
+		p := preset(t, "nkf-asn-2021")
+		o := NewCalculator(reg).Evaluate(Request{AgeYears: ptr(50.0), Sex: SexMale, Equation: e.ID, Measurements: []Measurement{cr("1", "mg/dL")}, Policy: p})
+		require.Empty(t, o.Results, "%v", bad)
+		require.Equal(t, []Reason{ReasonComputation}, codes(o))
+	}
+}
