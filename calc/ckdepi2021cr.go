@@ -24,6 +24,11 @@ func ckdEPI2021Cr() Equation {
 		MinAge:    18,
 		Needs:     NeedCreatinine | NeedSex,
 		Compute: func(in Inputs) (float64, []Step, error) {
+			// Compute is only called with its Needs present, but a wrong
+			// value is worse than none: refuse rather than guess.
+			if (in.Sex != SexFemale && in.Sex != SexMale) || !(in.CreatinineMgDL > 0) || !(in.AgeYears > 0) {
+				return 0, nil, errInput
+			}
 			kappa, alpha, sexFactor := 0.9, -0.302, 1.0
 			if in.Sex == SexFemale {
 				kappa, alpha, sexFactor = 0.7, -0.241, 1.012
