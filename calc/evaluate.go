@@ -1,6 +1,7 @@
 package calc
 
 import (
+	"errors"
 	"fmt"
 	"math"
 	"strconv"
@@ -273,7 +274,10 @@ func (c *Calculator) prepare(req Request, m Measurement) (InputUse, float64, Rea
 		return use, 0, reason
 	}
 	canon, factor, err := ToCanonical(m.Analyte, v, m.Unit)
-	if err != nil {
+	switch {
+	case errors.Is(err, ErrNotFinite):
+		return use, 0, ReasonValueImplausible
+	case err != nil:
 		return use, 0, ReasonUnitUnknown
 	}
 	if factor != 1 {

@@ -439,3 +439,9 @@ func TestEvaluateNeverPrintsNonFinite(t *testing.T) {
 		require.Equal(t, []Reason{ReasonComputation}, codes(o))
 	}
 }
+
+func TestHugeValueIsImplausibleNotUnknownUnit(t *testing.T) {
+	calc := NewCalculator(Builtin())
+	o := calc.Evaluate(Request{AgeYears: ptr(50.0), Sex: SexMale, Measurements: []Measurement{cr("1e308", "mmol/L")}, Policy: preset(t, "nkf-asn-2021")})
+	require.Equal(t, []Reason{ReasonValueImplausible}, codes(o))
+}

@@ -116,11 +116,13 @@ func Preset(name string) (Policy, error) {
 	case "ekfc":
 		// European Kidney Function Consortium: one equation across the age
 		// range from 2 years (Pottel 2021; cystatin C Pottel 2023), without
-		// height. Under 2 years EKFC is not validated: CKiD U25 from 1.
+		// height. Under 2 years EKFC is not validated: CKiD U25 from 1. EKFC
+		// cystatin C (and so the mean of the two) is used from 18, where its
+		// Q was estimated (Pottel 2023).
 		base.Name = name
 		base.Bands = []Band{
 			{MinAge: 1, MaxAge: 2, Creatinine: "ckid-u25-cr", CystatinC: "ckid-u25-cys", Combined: "ckid-u25-crcys"},
-			{MinAge: 2, Creatinine: "ekfc-cr", CystatinC: "ekfc-cys", Extra: []string{"crcl-timed-urine"}},
+			{MinAge: 2, Creatinine: "ekfc-cr", CystatinC: "ekfc-cys", Combined: "ekfc-crcys", Extra: []string{"crcl-timed-urine"}},
 		}
 	case "nice-2021":
 		// NICE NG203 (2021), recommendations 1.1.1 and 1.1.8: CKD-EPI
