@@ -76,6 +76,7 @@ func (c *Calculator) Evaluate(req Request) Outcome {
 			vals[m.Analyte] = &usable{}
 			continue
 		}
+		out.Inputs[len(out.Inputs)-1].Accepted = true
 		vals[m.Analyte] = &usable{value: v, ok: true}
 	}
 	get := func(a Analyte) float64 {

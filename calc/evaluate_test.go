@@ -144,6 +144,7 @@ func TestRefusedInputs(t *testing.T) {
 			require.Empty(t, o.Results)
 			require.Equal(t, []Reason{tc.want}, codes(o))
 			require.Equal(t, "cr", o.Refusals[0].SourceID)
+			require.False(t, o.Inputs[0].Accepted)
 			require.NotEmpty(t, o.Refusals[0].Message)
 		})
 	}
@@ -259,6 +260,7 @@ func TestCalibration(t *testing.T) {
 	require.Equal(t, "cr-enz", u.Calibration)
 	require.Equal(t, "2", u.CalibrationV)
 	require.InDelta(t, 0.97, u.Used, 1e-12) // 0.95 × 1.00 + 0.02
+	require.True(t, u.Accepted)
 
 	// The lot-specific rule is more specific than the method-wide one.
 	u, _ = used([]CalibrationRule{generic, lot}, m, p)

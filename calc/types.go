@@ -118,7 +118,9 @@ type InputUse struct {
 	Calibration  string  `json:"calibration,omitempty"`         // rule ID, if a rule applied
 	CalibrationV string  `json:"calibration_version,omitempty"` // rule version
 	Traceable    *bool   `json:"traceable,omitempty"`           // as stated by the rule; nil when no rule
-	Steps        []Step  `json:"steps,omitempty"`
+	// Accepted is true when the input passed every check and was used.
+	Accepted bool   `json:"accepted"`
+	Steps    []Step `json:"steps,omitempty"`
 }
 
 // Result is one computed value.
