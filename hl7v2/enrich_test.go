@@ -1,0 +1,306 @@
+package hl7v2
+
+import (
+	"flag"
+	"os"
+	"path/filepath"
+	"strings"
+	"testing"
+
+	"github.com/stretchr/testify/require"
+
+	"filtrate/calc"
+)
+
+var update = flag.Bool("update", false, "rewrite the expected files under testdata")
+
+// Result templates. Equation IDs are those of DESIGN.md. LOINC 98980-6 and
+// its name: LOINC, as quoted by the HL7 Switzerland ch-lab-report
+// implementation guide (profile ChLabObservation_eGFRcr_cys_CKD_EPI_2021);
+// LOINC 98979-8 and its name: from memory. The reported values, categories
+// and comments below are invented for these tests: hl7v2 only carries them,
+// it does not compute them.
+var (
+	egfrCr = calc.Result{
+		Equation: "ckd-epi-2021-cr", EquationVersion: "1", EquationName: "CKD-EPI 2021 creatinine",
+		LOINC:     "98979-8",
+		LOINCName: "Glomerular filtration rate/1.73 sq M.predicted [Volume Rate/Area] in Serum, Plasma or Blood by Creatinine-based formula (CKD-EPI 2021)",
+		Uses:      []calc.Analyte{calc.Creatinine},
+		Unit:      calc.UnitIndexed,
+	}
+	egfrCrCys = calc.Result{
+		Equation: "ckd-epi-2021-crcys", EquationVersion: "1", EquationName: "CKD-EPI 2021 creatinine-cystatin C",
+		LOINC:     "98980-6",
+		LOINCName: "Glomerular filtration rate/1.73 sq M.predicted [Volume Rate/Area] in Serum, Plasma or Blood by Creatinine and Cystatin C-based formula (CKD-EPI 2021)",
+		Uses:      []calc.Analyte{calc.Creatinine, calc.CystatinC},
+		Unit:      calc.UnitIndexed,
+	}
+)
+
+func result(tpl calc.Result, reported, category string, comments ...string) calc.Result {
+	tpl.Reported, tpl.Category, tpl.Comments = reported, category, comments
+	return tpl
+}
+
+const (
+	commentSteady = "eGFR assumes stable kidney function; it is unreliable in acute kidney injury."
+	commentDosing = "For drug dosing the non-indexed value (mL/min) may be needed."
+)
+
+// checkGolden compares got with testdata/name, or rewrites the file with
+// -update. Carriage returns are shown as line breaks in a failure.
+func checkGolden(t *testing.T, name string, got []byte) {
+	t.Helper()
+	path := filepath.Join("testdata", name)
+	if *update {
+		require.NoError(t, os.WriteFile(path, got, 0o644))
+	}
+	want, err := os.ReadFile(path)
+	require.NoError(t, err)
+	show := func(b []byte) string { return strings.ReplaceAll(string(b), "\r", "\n") }
+	require.Equal(t, show(want), show(got))
+	require.Equal(t, want, got)
+}
+
+func TestEnrichGolden(t *testing.T) {
+	tests := []struct {
+		in, want string
+		outcomes []*calc.Outcome
+		opts     EnrichOptions
+	}{
+		{
+			in: "oru_creatinine_final.hl7", want: "oru_creatinine_final.enriched.hl7",
+			outcomes: []*calc.Outcome{{
+				Inputs:  []calc.InputUse{{Analyte: calc.Creatinine, SourceID: "OBR1/OBX2"}},
+				Results: []calc.Result{result(egfrCr, "68", "G2", commentSteady, commentDosing)},
+			}},
+		},
+		{
+			in: "oru_crcys_capped.hl7", want: "oru_crcys_capped.enriched.hl7",
+			outcomes: []*calc.Outcome{
+				{
+					Inputs: []calc.InputUse{
+						{Analyte: calc.Creatinine, SourceID: "OBR1/OBX1"},
+						{Analyte: calc.CystatinC, SourceID: "OBR1/OBX2"},
+						{Analyte: calc.Height, SourceID: "OBR2/OBX1"},
+						{Analyte: calc.Weight, SourceID: "OBR2/OBX2"},
+					},
+					Results: []calc.Result{
+						result(egfrCr, "88", "G2", commentSteady),
+						func() calc.Result {
+							r := result(egfrCrCys, ">90", "G1", commentSteady)
+							r.Capped = true
+							return r
+						}(),
+					},
+				},
+				nil, // the vitals order needs no calculation
+			},
+		},
+		{
+			in: "oru_censored_refused.hl7", want: "oru_censored_refused.enriched.hl7",
+			outcomes: []*calc.Outcome{{
+				Refusals: []calc.Refusal{
+					{Code: calc.ReasonValueCensored, Message: calc.ReasonValueCensored.Describe(), Equation: "ckd-epi-2021-cr", Analyte: calc.Creatinine, SourceID: "OBR1/OBX1"},
+					// The same reason for a second equation is written once.
+					{Code: calc.ReasonValueCensored, Message: calc.ReasonValueCensored.Describe(), Equation: "ekfc-cr", Analyte: calc.Creatinine, SourceID: "OBR1/OBX1"},
+				},
+			}},
+		},
+		{
+			in: "oru_corrected_delims.hl7", want: "oru_corrected_delims.enriched.hl7",
+			outcomes: []*calc.Outcome{{
+				Inputs:  []calc.InputUse{{Analyte: calc.Creatinine, SourceID: "OBR1/OBX1"}},
+				Results: []calc.Result{result(egfrCr, "64", "G2", "Corrected: replaces the eGFR of report #NVL20250314-0001 * see note.")},
+			}},
+		},
+		{
+			in: "oru_cancel_delete.hl7", want: "oru_cancel_delete.enriched.hl7",
+			outcomes: []*calc.Outcome{nil, nil},
+			opts:     EnrichOptions{Retractions: []calc.Result{egfrCr, egfrCrCys}},
+		},
+	}
+	for _, tt := range tests {
+		t.Run(tt.in, func(t *testing.T) {
+			o := extract(t, tt.in)
+			before := o.Message().Encode()
+			got, err := o.Enrich(tt.outcomes, tt.opts)
+			require.NoError(t, err)
+			checkGolden(t, tt.want, got.Encode())
+
+			require.Equal(t, before, o.Message().Encode(), "the original message is not modified")
+			require.Equal(t, o.Message().MSH().String(), got.MSH().String(), "MSH is forwarded byte for byte")
+			// Every original segment survives unchanged except for OBX-1.
+			orig := o.Message().Segments()
+			j := 0
+			for _, s := range got.Segments() {
+				if j < len(orig) && s.Name() == orig[j].Name() && sameExceptSetID(s, orig[j]) {
+					if s.Field(1).Raw() == orig[j].Field(1).Raw() {
+						require.Equal(t, orig[j].String(), s.String())
+					}
+					j++
+				}
+			}
+			require.Equal(t, len(orig), j, "all original segments are kept in order")
+			// The enriched message parses again.
+			_, err = Parse(got.Encode())
+			require.NoError(t, err)
+		})
+	}
+}
+
+func sameExceptSetID(a, b *Segment) bool {
+	if a.NumFields() != b.NumFields() {
+		return false
+	}
+	for n := 2; n <= a.NumFields(); n++ {
+		if a.Field(n).Raw() != b.Field(n).Raw() {
+			return false
+		}
+	}
+	return true
+}
+
+func TestEnrichStatusesAndNotes(t *testing.T) {
+	m, err := Parse([]byte(seg(
+		`MSH|^~\&|NVLAB|NVL|EHR|NVH|20250314093000||ORU^R01|E1|P|2.5.1`,
+		`PID|1||NVL0000999^^^NVL^MR||Ashdown^Lior||19700101|F`,
+		`OBR|1||||||20250314080000`,
+		`OBX|1|NM|2160-0^Creatinine^LN||0.9|mg/dL|||||`,
+		`NTE|7|L|existing note`,
+		`OBX|2|NM|33863-2^Cystatin C^LN||0.8|mg/L|||||W`,
+		`OBX|3|NM|2160-0^Creatinine^LN||0.8|mg/dL|||||P`,
+		`OBX|4|NM|2951-2^Sodium^LN||140|mmol/L|||||F`,
+	)))
+	require.NoError(t, err)
+	o, err := ExtractORU(m, ExtractOptions{})
+	require.NoError(t, err)
+	out := &calc.Outcome{
+		Results: []calc.Result{result(egfrCr, "75", "")},
+		Refusals: []calc.Refusal{
+			// Anchored to the unknown-status OBX: its status note suffices.
+			{Code: calc.ReasonInputDuplicate, Message: "dup", SourceID: "OBR1/OBX1"},
+			// No source, no analyte: after the first creatinine result,
+			// which is silenced too.
+			{Code: calc.ReasonAgeMissing},
+			// By analyte: the usable creatinine.
+			{Code: calc.ReasonNoEquation, Analyte: calc.Creatinine},
+		},
+	}
+	got, err := o.Enrich([]*calc.Outcome{out}, EnrichOptions{
+		CommentSource: "O",
+		Flag:          func(calc.Result) string { return "N" },
+	})
+	require.NoError(t, err)
+	want := seg(
+		`MSH|^~\&|NVLAB|NVL|EHR|NVH|20250314093000||ORU^R01|E1|P|2.5.1`,
+		`PID|1||NVL0000999^^^NVL^MR||Ashdown^Lior||19700101|F`,
+		`OBR|1||||||20250314080000`,
+		`OBX|1|NM|2160-0^Creatinine^LN||0.9|mg/dL|||||`,
+		`NTE|7|L|existing note`,
+		`NTE|8|O|eGFR not calculated: the result status is missing or not recognised.`,
+		`OBX|2|NM|33863-2^Cystatin C^LN||0.8|mg/L|||||W`,
+		`NTE|1|O|Any eGFR calculated earlier from this result is withdrawn.`,
+		`OBX|3|NM|2160-0^Creatinine^LN||0.8|mg/dL|||||P`,
+		`NTE|1|O|eGFR not calculated: no equation in the policy applies to these results.`,
+		`OBX|4|NM|98979-8^`+egfrCr.LOINCName+`^LN||75|mL/min/{1.73_m2}^^UCUM||N|||P|||20250314080000|||ckd-epi-2021-cr^CKD-EPI 2021 creatinine^L`,
+		`OBX|5|NM|2951-2^Sodium^LN||140|mmol/L|||||F`,
+	)
+	require.Equal(t, strings.ReplaceAll(want, "\r", "\n"), strings.ReplaceAll(string(got.Encode()), "\r", "\n"))
+}
+
+func TestEnrichRepeatedCodeGetsSubIDs(t *testing.T) {
+	// With sex unknown a policy may report both values; OBX-3 plus OBX-4
+	// must identify each observation within the order (HL7 v2.5.1 chapter
+	// 7, OBX-4 Observation Sub-ID).
+	o := extract(t, "oru_creatinine_final.hl7")
+	female := result(egfrCr, "68", "G2")
+	female.AssumedSex = "female"
+	male := result(egfrCr, "91", "G1")
+	male.AssumedSex = "male"
+	got, err := o.Enrich([]*calc.Outcome{{Results: []calc.Result{female, male}}}, EnrichOptions{})
+	require.NoError(t, err)
+	var subs, notes []string
+	for _, s := range got.Segments() {
+		if s.Name() == "OBX" && s.Field(3).String() == "98979-8" {
+			subs = append(subs, s.Field(4).String())
+		}
+		if s.Name() == "NTE" && strings.HasPrefix(s.Field(3).String(), "Calculated as if") {
+			notes = append(notes, s.Field(3).String())
+		}
+	}
+	require.Equal(t, []string{"1", "2"}, subs)
+	require.Equal(t, []string{
+		"Calculated as if the patient were female: sex is not recorded as female or male.",
+		"Calculated as if the patient were male: sex is not recorded as female or male.",
+	}, notes)
+}
+
+func TestEnrichValueTypes(t *testing.T) {
+	d := DefaultDelimiters()
+	tests := []struct {
+		reported  string
+		capped    bool
+		unit      string
+		valueType string
+		value     string
+		units     string
+	}{
+		{"68", false, calc.UnitIndexed, "NM", "68", "mL/min/{1.73_m2}^^UCUM"},
+		{">90", true, calc.UnitIndexed, "SN", ">^90", "mL/min/{1.73_m2}^^UCUM"},
+		{"90", true, calc.UnitIndexed, "SN", ">^90", "mL/min/{1.73_m2}^^UCUM"},
+		{"<15", false, "", "SN", "<^15", "mL/min/{1.73_m2}^^UCUM"},
+		{"104.5", false, calc.UnitNotIndexed, "NM", "104.5", "mL/min^^UCUM"},
+		{"n/a", false, calc.UnitIndexed, "ST", "n/a", "mL/min/{1.73_m2}^^UCUM"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.reported, func(t *testing.T) {
+			o := extract(t, "oru_creatinine_final.hl7")
+			r := result(egfrCr, tt.reported, "")
+			r.Capped, r.Unit = tt.capped, tt.unit
+			got, err := o.Enrich([]*calc.Outcome{{Results: []calc.Result{r}}}, EnrichOptions{})
+			require.NoError(t, err)
+			s := got.Segment(8) // after the creatinine OBX and its NTE
+			require.Equal(t, "OBX", s.Name())
+			require.Equal(t, tt.valueType, s.Field(2).String())
+			require.Equal(t, tt.value, s.Field(5).Raw())
+			require.Equal(t, tt.units, s.Field(6).Raw())
+			_ = d
+		})
+	}
+}
+
+func TestEnrichErrors(t *testing.T) {
+	o := extract(t, "oru_creatinine_final.hl7")
+	_, err := o.Enrich(nil, EnrichOptions{})
+	require.Error(t, err)
+	noCode := result(egfrCr, "68", "")
+	noCode.LOINC = ""
+	_, err = o.Enrich([]*calc.Outcome{{Results: []calc.Result{noCode}}}, EnrichOptions{})
+	require.Error(t, err)
+	_, err = o.Enrich([]*calc.Outcome{{Results: []calc.Result{result(egfrCr, "", "")}}}, EnrichOptions{})
+	require.Error(t, err)
+}
+
+func TestEnrichWithoutOutcomesKeepsMessage(t *testing.T) {
+	o := extract(t, "oru_creatinine_final.hl7")
+	got, err := o.Enrich([]*calc.Outcome{nil}, EnrichOptions{})
+	require.NoError(t, err)
+	require.Equal(t, o.Message().Encode(), got.Encode())
+}
+
+func TestACKGolden(t *testing.T) {
+	orig := readMessage(t, "oru_creatinine_final.hl7")
+	checkGolden(t, "ack_aa.hl7", BuildACK(orig, AckAccept, "", "", "NVF-ACK-0001", ackTime).Encode())
+	checkGolden(t, "ack_ae.hl7", BuildACK(orig, AckError, "Temporary storage failure; please resend.", "", "NVF-ACK-0002", ackTime).Encode())
+
+	// A frame without a usable MSH: AR with default delimiters.
+	bad := []byte("PID|1||NVL0000123^^^NVL^MR||Marlowe^Ione\r")
+	_, err := Parse(bad)
+	var pe *ParseError
+	require.ErrorAs(t, err, &pe)
+	ar := BuildACKDetail(nil, AckReject, ErrorDetail{Code: pe.Code(), Location: pe.Location(), Text: "Message rejected: " + pe.Err.Error() + "."}, "NVF-ACK-0003", ackTime)
+	checkGolden(t, "ack_ar_no_msh.hl7", ar.Encode())
+	require.NotContains(t, string(ar.Encode()), "Marlowe")
+	require.NotContains(t, string(ar.Encode()), "NVL0000123")
+}
