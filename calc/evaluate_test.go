@@ -447,3 +447,13 @@ func TestHugeValueIsImplausibleNotUnknownUnit(t *testing.T) {
 	o := calc.Evaluate(Request{AgeYears: ptr(50.0), Sex: SexMale, Measurements: []Measurement{cr("1e308", "mmol/L")}, Policy: preset(t, "nkf-asn-2021")})
 	require.Equal(t, []Reason{ReasonValueImplausible}, codes(o))
 }
+
+func TestEveryReasonIsListedAndDescribed(t *testing.T) {
+	seen := map[Reason]bool{}
+	for _, r := range Reasons() {
+		require.False(t, seen[r], "listed twice: %s", r)
+		seen[r] = true
+		require.NotEqual(t, Reason("").Describe(), r.Describe(), "no sentence for %s", r)
+	}
+	require.Len(t, seen, 16)
+}

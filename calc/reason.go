@@ -64,3 +64,13 @@ func (r Reason) Describe() string {
 		return "eGFR not calculated."
 	}
 }
+
+// Reasons lists every refusal code, for metrics created up front.
+func Reasons() []Reason {
+	return []Reason{
+		ReasonUnitUnknown, ReasonValueCensored, ReasonValueNotNumeric, ReasonValueImplausible,
+		ReasonInputMissing, ReasonInputDuplicate, ReasonHeightMissing, ReasonAgeMissing,
+		ReasonAgeBelowRange, ReasonAgeAboveRange, ReasonSexUnknown, ReasonNotTraceable,
+		ReasonCalibrationAmbiguous, ReasonEquationUnknown, ReasonNoEquation, ReasonComputation,
+	}
+}

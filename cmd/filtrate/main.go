@@ -9,6 +9,7 @@ import (
 	"os"
 	"os/signal"
 	"syscall"
+	_ "time/tzdata" // IANA zones for config "timezone" in minimal containers
 )
 
 // version is set at build time with -ldflags "-X main.version=...".

@@ -31,6 +31,8 @@ is used; local regulations apply.`,
 	}
 	root.AddCommand(
 		newCalcCmd(),
+		newServeCmd(version),
+		newSendCmd(),
 	)
 	return root
 }

@@ -55,6 +55,19 @@ type Group struct {
 	Request calc.Request
 	// Withdrawn lists inputs withdrawn by their status.
 	Withdrawn []Withdrawal
+	// PatientID, BirthDate and Sex, when PatientID is set, override the
+	// message's patient for this group (a message carrying several
+	// patients).
+	PatientID string
+	BirthDate string
+	Sex       string
+}
+
+func (g Group) patient(msg Message) (id, birth, sex string) {
+	if g.PatientID != "" {
+		return g.PatientID, g.BirthDate, g.Sex
+	}
+	return msg.PatientID, msg.BirthDate, msg.Sex
 }
 
 // Message is one received message in neutral form.
@@ -181,9 +194,10 @@ func Records(msg Message, evals []Evaluated, snap *Snapshot, version, outputMess
 		if err != nil {
 			return nil, fmt.Errorf("pipeline: encode inputs of group %s: %w", e.Group.Key, err)
 		}
+		pid, birth, sex := e.Group.patient(msg)
 		base := store.AuditRecord{
 			Transport: msg.Transport, MessageID: msg.MessageID, RawHash: rawHash,
-			PatientID: msg.PatientID, BirthDate: msg.BirthDate, Sex: msg.Sex,
+			PatientID: pid, BirthDate: birth, Sex: sex,
 			CollectedAt: e.Request.CollectedAt, Inputs: inputs,
 			Policy: e.Outcome.Policy, PolicyVersion: e.Outcome.PolicyVersion,
 			ConfigHash: snap.ConfigHash, SoftwareVersion: version,
@@ -225,12 +239,10 @@ func Records(msg Message, evals []Evaluated, snap *Snapshot, version, outputMess
 // History returns the usable creatinine and cystatin C values of a message,
 // in canonical units, for the per-patient result history.
 func History(msg Message, evals []Evaluated) []store.HistoryPoint {
-	if msg.PatientID == "" {
-		return nil
-	}
 	var pts []store.HistoryPoint
 	for _, e := range evals {
-		if e.Request.CollectedAt.IsZero() {
+		pid, _, _ := e.Group.patient(msg)
+		if pid == "" || e.Request.CollectedAt.IsZero() {
 			continue
 		}
 		for _, in := range e.Outcome.Inputs {
@@ -238,7 +250,7 @@ func History(msg Message, evals []Evaluated) []store.HistoryPoint {
 				continue
 			}
 			pts = append(pts, store.HistoryPoint{
-				PatientID: msg.PatientID, Analyte: string(in.Analyte), Value: in.Used,
+				PatientID: pid, Analyte: string(in.Analyte), Value: in.Used,
 				Unit: in.UsedUnit, CollectedAt: e.Request.CollectedAt, MessageID: msg.MessageID,
 			})
 		}
