@@ -120,7 +120,7 @@ func New(ctx context.Context, opts Options) (a *App, err error) {
 	for _, w := range cfg.Warnings() {
 		a.log.Warn("configuration warning", "warning", w)
 	}
-	st, err := buildState(cfg, a.calc.Registry())
+	st, err := ingest.StateFromConfig(cfg, a.calc.Registry())
 	if err != nil {
 		return nil, err
 	}
@@ -170,31 +170,6 @@ func (a *App) loadConfig() (*config.Config, error) {
 	default:
 		return config.Default(), nil
 	}
-}
-
-// buildState derives everything a message is processed under from a
-// configuration.
-func buildState(cfg *config.Config, reg *calc.Registry) (*ingest.State, error) {
-	pol, err := cfg.Policy()
-	if err != nil {
-		return nil, fmt.Errorf("policy: %w", err)
-	}
-	codes, err := codeMap(cfg)
-	if err != nil {
-		return nil, err
-	}
-	loc, err := cfg.Location()
-	if err != nil {
-		return nil, fmt.Errorf("timezone: %w", err)
-	}
-	return &ingest.State{
-		Snapshot:    &pipeline.Snapshot{Policy: pol, Calibrations: cfg.Calibrations(), ConfigHash: cfg.Hash()},
-		Codes:       codes,
-		Location:    loc,
-		Retractions: ingest.RetractionTemplates(pol, reg),
-		ForwardHL7:  cfg.HL7v2.Forward != "",
-		ForwardFHIR: cfg.FHIR.Forward != "",
-	}, nil
 }
 
 func (a *App) addCleanup(name string, fn func(context.Context) error) {
@@ -341,7 +316,7 @@ func (a *App) reload() error {
 	if err != nil {
 		return fmt.Errorf("reload: %w", err)
 	}
-	st, err := buildState(cfg, a.calc.Registry())
+	st, err := ingest.StateFromConfig(cfg, a.calc.Registry())
 	if err != nil {
 		return fmt.Errorf("reload: %w", err)
 	}

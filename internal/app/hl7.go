@@ -15,18 +15,6 @@ import (
 	"filtrate/store"
 )
 
-func codeMap(cfg *config.Config) (*hl7v2.CodeMap, error) {
-	entries := hl7v2.DefaultCodeEntries()
-	for _, a := range cfg.Analytes {
-		entries = append(entries, hl7v2.CodeEntry{System: a.System, Code: a.Code, Analyte: a.Analyte, Unit: a.Unit})
-	}
-	m, err := hl7v2.NewCodeMap(entries...)
-	if err != nil {
-		return nil, fmt.Errorf("analytes: %w", err)
-	}
-	return m, nil
-}
-
 func (a *App) setupHL7(cfg *config.Config) error {
 	a.hl7 = &ingest.HL7{
 		Proc:    a.proc,

@@ -6,9 +6,11 @@
 package ingest
 
 import (
+	"fmt"
 	"time"
 
 	"filtrate/calc"
+	"filtrate/config"
 	"filtrate/hl7v2"
 	"filtrate/internal/pipeline"
 )
@@ -62,4 +64,43 @@ func RetractionTemplates(p calc.Policy, reg *calc.Registry) []calc.Result {
 		}
 	}
 	return out
+}
+
+// StateFromConfig derives everything a message is processed under from a
+// configuration.
+func StateFromConfig(cfg *config.Config, reg *calc.Registry) (*State, error) {
+	pol, err := cfg.Policy()
+	if err != nil {
+		return nil, fmt.Errorf("policy: %w", err)
+	}
+	codes, err := CodeMap(cfg)
+	if err != nil {
+		return nil, err
+	}
+	loc, err := cfg.Location()
+	if err != nil {
+		return nil, fmt.Errorf("timezone: %w", err)
+	}
+	return &State{
+		Snapshot:    &pipeline.Snapshot{Policy: pol, Calibrations: cfg.Calibrations(), ConfigHash: cfg.Hash()},
+		Codes:       codes,
+		Location:    loc,
+		Retractions: RetractionTemplates(pol, reg),
+		ForwardHL7:  cfg.HL7v2.Forward != "",
+		ForwardFHIR: cfg.FHIR.Forward != "",
+	}, nil
+}
+
+// CodeMap builds the analyte code map: the built-in LOINC codes plus the
+// configured local codes (a local entry overrides a built-in one).
+func CodeMap(cfg *config.Config) (*hl7v2.CodeMap, error) {
+	entries := hl7v2.DefaultCodeEntries()
+	for _, a := range cfg.Analytes {
+		entries = append(entries, hl7v2.CodeEntry{System: a.System, Code: a.Code, Analyte: a.Analyte, Unit: a.Unit})
+	}
+	m, err := hl7v2.NewCodeMap(entries...)
+	if err != nil {
+		return nil, fmt.Errorf("analytes: %w", err)
+	}
+	return m, nil
 }
