@@ -84,7 +84,7 @@ func (a *App) setupForwarders(cfg *config.Config) error {
 		Poll:        a.opts.ForwardPoll,
 		SendTimeout: cfg.HL7v2.AckTimeout + 10*time.Second,
 		Metrics:     a.metrics,
-		Logger:      a.log.With("destination", ingest.DestinationHL7),
+		Logger:      a.log,
 	}
 	w.Init()
 	a.workers = append(a.workers, w)

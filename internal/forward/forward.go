@@ -182,12 +182,25 @@ func (w *Worker) RunOnce(ctx context.Context) (int, error) {
 	}
 	for i, it := range items {
 		if ctx.Err() != nil {
-			// Shutting down: the remaining claims expire with their lease.
+			// Shutting down: hand the remaining claims back at once so
+			// that another daemon (or this one after a restart) need not
+			// wait for their lease to run out.
+			w.release(ctx, items[i:])
 			return i, nil
 		}
 		w.deliver(ctx, it)
 	}
 	return len(items), nil
+}
+
+func (w *Worker) release(ctx context.Context, items []store.OutboxItem) {
+	rctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), 5*time.Second)
+	defer cancel()
+	for _, it := range items {
+		if err := w.Outbox.Retry(rctx, it.ID, w.Now(), "released at shutdown"); err != nil {
+			w.Logger.Warn("outbox release failed; the claim expires with its lease", "destination", w.Destination, "item", it.ID, "err", err)
+		}
+	}
 }
 
 func (w *Worker) deliver(ctx context.Context, it store.OutboxItem) {

@@ -155,3 +155,20 @@ func TestRejectedErrorUnwraps(t *testing.T) {
 	var rej *RejectedError
 	require.ErrorAs(t, err, &rej)
 }
+
+// Claims not yet delivered when the worker stops are handed back at once.
+func TestShutdownReleasesUndeliveredClaims(t *testing.T) {
+	box := newFakeOutbox(item(1, 0), item(2, 0), item(3, 0))
+	ctx, cancel := context.WithCancel(context.Background())
+	now := time.Date(2026, 12, 1, 8, 0, 0, 0, time.UTC)
+	w := &Worker{Destination: "hl7v2", Name: "w1", Outbox: box, Now: func() time.Time { return now },
+		Sender: SenderFunc(func(context.Context, store.OutboxItem) (string, error) {
+			cancel() // shutdown arrives during the first delivery
+			return "AA", nil
+		})}
+	n, err := w.RunOnce(ctx)
+	require.NoError(t, err)
+	require.Equal(t, 1, n)
+	require.Equal(t, map[int64]string{1: "AA"}, box.sent)
+	require.Equal(t, map[int64]time.Time{2: now, 3: now}, box.retries, "released, due now")
+}
