@@ -33,6 +33,10 @@ is used; local regulations apply.`,
 		newCalcCmd(),
 		newServeCmd(version),
 		newSendCmd(),
+		newConfigCmd(),
+		newDryrunCmd(version),
+		newDemoCmd(version),
+		newOutboxCmd(),
 	)
 	return root
 }

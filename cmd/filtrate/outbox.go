@@ -1,0 +1,103 @@
+package main
+
+import (
+	"fmt"
+	"strconv"
+	"time"
+
+	"github.com/spf13/cobra"
+
+	"filtrate/config"
+	"filtrate/store"
+)
+
+func openStoreFromConfig(cmd *cobra.Command, path string) (store.Store, error) {
+	cfg := config.Default()
+	if path != "" {
+		var err error
+		if cfg, err = config.LoadFile(path); err != nil {
+			return nil, err
+		}
+	}
+	return store.Open(cmd.Context(), cfg.Store)
+}
+
+func newOutboxCmd() *cobra.Command {
+	var cfgPath string
+	cmd := &cobra.Command{
+		Use:   "outbox",
+		Short: "Inspect the delivery queue and re-send parked messages",
+		Long: `Messages the downstream system rejected for good (HL7 v2 AR, FHIR 4xx) are parked
+for a person. "outbox status" shows the queue per destination, "outbox parked"
+lists parked messages with the reason, and "outbox requeue ID" sends one again
+once the cause is fixed downstream.`,
+	}
+	cmd.PersistentFlags().StringVar(&cfgPath, "config", "", "configuration file (YAML) naming the store; default: built-in")
+	cmd.AddCommand(&cobra.Command{
+		Use:   "status",
+		Short: "Show pending, in-flight and parked counts per destination",
+		Args:  cobra.NoArgs,
+		RunE: func(cmd *cobra.Command, _ []string) error {
+			s, err := openStoreFromConfig(cmd, cfgPath)
+			if err != nil {
+				return err
+			}
+			defer s.Close()
+			stats, err := s.OutboxStats(cmd.Context())
+			if err != nil {
+				return err
+			}
+			out := cmd.OutOrStdout()
+			fmt.Fprintln(out, "destination\tpending\tin_flight\toldest_pending\tparked")
+			for _, st := range stats {
+				fmt.Fprintf(out, "%s\t%d\t%d\t%s\t%d\n", st.Destination, st.Pending, st.InFlight, st.OldestPendingAge.Round(time.Second), st.Parked)
+			}
+			return nil
+		},
+	})
+	cmd.AddCommand(&cobra.Command{
+		Use:   "parked",
+		Short: "List parked messages",
+		Args:  cobra.NoArgs,
+		RunE: func(cmd *cobra.Command, _ []string) error {
+			s, err := openStoreFromConfig(cmd, cfgPath)
+			if err != nil {
+				return err
+			}
+			defer s.Close()
+			items, err := s.ListParked(cmd.Context())
+			if err != nil {
+				return err
+			}
+			out := cmd.OutOrStdout()
+			fmt.Fprintln(out, "id\tdestination\tmessage_id\tattempts\tparked_at\treason")
+			for _, it := range items {
+				fmt.Fprintf(out, "%d\t%s\t%s\t%d\t%s\t%s\n", it.ID, it.Destination, it.MessageID, it.Attempts, it.ParkedAt.UTC().Format(time.RFC3339), it.LastError)
+			}
+			fmt.Fprintf(out, "%d parked\n", len(items))
+			return nil
+		},
+	})
+	cmd.AddCommand(&cobra.Command{
+		Use:   "requeue ID",
+		Short: "Send a parked message again",
+		Args:  cobra.ExactArgs(1),
+		RunE: func(cmd *cobra.Command, args []string) error {
+			id, err := strconv.ParseInt(args[0], 10, 64)
+			if err != nil {
+				return fmt.Errorf("outbox requeue: ID must be a number")
+			}
+			s, err := openStoreFromConfig(cmd, cfgPath)
+			if err != nil {
+				return err
+			}
+			defer s.Close()
+			if err := s.Requeue(cmd.Context(), id); err != nil {
+				return fmt.Errorf("outbox requeue %d: %w", id, err)
+			}
+			fmt.Fprintf(cmd.OutOrStdout(), "outbox item %d requeued; a running daemon sends it at its next poll\n", id)
+			return nil
+		},
+	})
+	return cmd
+}
