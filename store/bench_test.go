@@ -12,7 +12,7 @@ import (
 	"time"
 
 	"filtrate/store"
-	"filtrate/store/internal/pgtest"
+	"filtrate/internal/pgtest"
 )
 
 // benchParallelism makes RunParallel use 8 goroutines per CPU, enough

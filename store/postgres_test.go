@@ -6,7 +6,7 @@ import (
 
 	"github.com/stretchr/testify/require"
 
-	"filtrate/store/internal/pgtest"
+	"filtrate/internal/pgtest"
 	"filtrate/store/storetest"
 )
 

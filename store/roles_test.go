@@ -13,7 +13,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"filtrate/store"
-	"filtrate/store/internal/pgtest"
+	"filtrate/internal/pgtest"
 )
 
 // sqlBlocks returns the ```sql blocks of a Markdown file.

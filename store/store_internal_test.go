@@ -16,7 +16,7 @@ import (
 	"github.com/lib/pq"
 	"github.com/stretchr/testify/require"
 
-	"filtrate/store/internal/pgtest"
+	"filtrate/internal/pgtest"
 )
 
 // backends opens a fresh store of each kind and a privileged handle on the
