@@ -6,6 +6,7 @@ import (
 	"os"
 	"os/signal"
 	"syscall"
+	"time"
 
 	"github.com/spf13/cobra"
 
@@ -16,6 +17,7 @@ func newServeCmd(version string) *cobra.Command {
 	var opts struct {
 		config   string
 		logLevel string
+		shutdown time.Duration
 	}
 	cmd := &cobra.Command{
 		Use:   "serve",
@@ -34,7 +36,7 @@ SIGTERM and SIGINT stop accepting, drain in-flight messages and exit.`,
 				return err
 			}
 			logger := slog.New(slog.NewJSONHandler(cmd.ErrOrStderr(), &slog.HandlerOptions{Level: level}))
-			a, err := app.New(cmd.Context(), app.Options{ConfigFile: opts.config, Version: version, Logger: logger})
+			a, err := app.New(cmd.Context(), app.Options{ConfigFile: opts.config, Version: version, Logger: logger, ShutdownTimeout: opts.shutdown})
 			if err != nil {
 				return err
 			}
@@ -58,5 +60,6 @@ SIGTERM and SIGINT stop accepting, drain in-flight messages and exit.`,
 	}
 	cmd.Flags().StringVar(&opts.config, "config", "", "configuration file (YAML); default: built-in")
 	cmd.Flags().StringVar(&opts.logLevel, "log-level", "info", "log level: debug, info, warn, error")
+	cmd.Flags().DurationVar(&opts.shutdown, "shutdown-timeout", 30*time.Second, "deadline for a graceful stop: drain in-flight messages, finish deliveries, close the store")
 	return cmd
 }
