@@ -37,6 +37,8 @@ is used; local regulations apply.`,
 		newDryrunCmd(version),
 		newDemoCmd(version),
 		newOutboxCmd(),
+		newAuditCmd(),
+		newStoreCmd(),
 	)
 	return root
 }
