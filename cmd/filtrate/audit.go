@@ -108,12 +108,13 @@ configuration hash. Records form a hash chain.
   show     one record in full, with a recomputation verdict (shows patient data)
   verify   check the hash chain and recompute every record
   export   records as CSV, or as a FHIR R4 Bundle of Provenance and AuditEvent
+  checkpoint  the chain head, to keep outside the database (see verify --checkpoints)
 
 The store is the one the configuration names (--config; default file:filtrate.db).
 The audit commands never change the store.`,
 	}
 	cmd.PersistentFlags().StringVar(&opts.config, "config", "", "configuration file (YAML) naming the store; default: built-in (file:filtrate.db)")
-	cmd.AddCommand(newAuditSearchCmd(opts), newAuditShowCmd(opts), newAuditVerifyCmd(opts), newAuditExportCmd(opts))
+	cmd.AddCommand(newAuditSearchCmd(opts), newAuditShowCmd(opts), newAuditVerifyCmd(opts), newAuditExportCmd(opts), newAuditCheckpointCmd(opts))
 	return cmd
 }
 
@@ -202,8 +203,9 @@ This is the one command that displays patient data.`,
 
 // auditVerifyOptions are the flags of "audit verify".
 type auditVerifyOptions struct {
-	since    string
-	logLevel string
+	since       string
+	checkpoints string
+	logLevel    string
 	// logger, when set (tests), replaces the JSON logger on standard error.
 	logger *slog.Logger
 }
@@ -231,6 +233,7 @@ when anything does not, 1 when the store cannot be read.`,
 		},
 	}
 	cmd.Flags().StringVar(&vo.since, "since", "", "start at the first record recorded at or after this time (RFC 3339, or YYYY-MM-DD)")
+	cmd.Flags().StringVar(&vo.checkpoints, "checkpoints", "", "file of checkpoints from \"audit checkpoint\", kept outside the database, to check as well")
 	cmd.Flags().StringVar(&vo.logLevel, "log-level", "error", "log level of the JSON log on standard error: debug, info, warn, error")
 	return cmd
 }
@@ -263,6 +266,17 @@ func runAuditVerify(ctx context.Context, opts *auditOptions, vo auditVerifyOptio
 		}
 		if vopts.Since, err = audit.ParseTime(vo.since, loc, false); err != nil {
 			return fmt.Errorf("audit verify: --since: %w", err)
+		}
+	}
+	if vo.checkpoints != "" {
+		f, err := os.Open(vo.checkpoints)
+		if err != nil {
+			return fmt.Errorf("audit verify: --checkpoints: %w", err)
+		}
+		vopts.Checkpoints, err = audit.ReadCheckpoints(f)
+		f.Close()
+		if err != nil {
+			return fmt.Errorf("audit verify: --checkpoints: %w", err)
 		}
 	}
 	s, err := openAuditStore(ctx, cfg, logger)
@@ -398,4 +412,52 @@ func writeAuditFile(path string, write func(io.Writer) error) error {
 		return err
 	}
 	return os.Rename(tmp.Name(), path)
+}
+
+func newAuditCheckpointCmd(opts *auditOptions) *cobra.Command {
+	var out string
+	cmd := &cobra.Command{
+		Use:   "checkpoint [--out FILE]",
+		Short: "Export the chain head as a checkpoint to keep outside the database",
+		Long: `Print the current chain head (last record ID, its hash and time) as one JSON
+line, or append it to --out. Keep checkpoints where the database's
+administrators cannot change them (write-once storage, the quality records), for
+example from a daily timer. "audit verify --checkpoints FILE" then proves that
+no checkpointed record was changed since, even by someone able to rewrite the
+whole chain and recompute every hash.`,
+		Args: cobra.NoArgs,
+		RunE: func(cmd *cobra.Command, _ []string) error {
+			cfg, err := auditConfig(opts.config)
+			if err != nil {
+				return err
+			}
+			s, err := openAuditStore(cmd.Context(), cfg, nil)
+			if err != nil {
+				return fmt.Errorf("audit checkpoint: %w", err)
+			}
+			defer s.Close()
+			cp, err := audit.TakeCheckpoint(cmd.Context(), s, time.Now())
+			if err != nil {
+				return err
+			}
+			w := cmd.OutOrStdout()
+			if out != "" {
+				f, err := os.OpenFile(out, os.O_APPEND|os.O_CREATE|os.O_WRONLY, 0o600)
+				if err != nil {
+					return fmt.Errorf("audit checkpoint: %w", err)
+				}
+				defer f.Close()
+				w = f
+			}
+			if err := audit.WriteCheckpoint(w, cp); err != nil {
+				return fmt.Errorf("audit checkpoint: %w", err)
+			}
+			if out != "" {
+				fmt.Fprintf(cmd.OutOrStdout(), "checkpoint at record %d appended to %s\n", cp.LastID, out)
+			}
+			return nil
+		},
+	}
+	cmd.Flags().StringVar(&out, "out", "", "append the checkpoint to this file instead of printing it")
+	return cmd
 }

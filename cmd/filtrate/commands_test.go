@@ -137,3 +137,19 @@ func TestOutboxParkedAndRequeue(t *testing.T) {
 	_, _, err = runCLI(t, "", "outbox", "requeue", "999", "--config", cfgPath)
 	require.Error(t, err)
 }
+
+// The demo's kept store goes through the auditor's commands: checkpoint,
+// then verify against it.
+func TestAuditCheckpointCommand(t *testing.T) {
+	dir := t.TempDir()
+	_, _, err := runCLI(t, "", "demo", "--scenario", demoDir, "--keep", dir)
+	require.NoError(t, err)
+	cfgPath := filepath.Join(dir, "filtrate.yml")
+	cps := filepath.Join(dir, "checkpoints.jsonl")
+	out, _, err := runCLI(t, "", "audit", "checkpoint", "--config", cfgPath, "--out", cps)
+	require.NoError(t, err)
+	require.Contains(t, out, "checkpoint at record 11 appended")
+	out, _, err = runCLI(t, "", "audit", "verify", "--config", cfgPath, "--checkpoints", cps)
+	require.NoError(t, err, out)
+	require.Contains(t, out, "audit verify: OK: 11 records")
+}

@@ -118,6 +118,9 @@ type VerifyOptions struct {
 	// Logger receives a summary and one line per problem (IDs and kinds
 	// only). The default discards.
 	Logger *slog.Logger
+	// Checkpoints, exported earlier and kept outside the database, are
+	// checked too: each record they name must still carry their hash.
+	Checkpoints []Checkpoint
 }
 
 // errStop ends a walk at the chain head read before it.
@@ -206,6 +209,11 @@ func Verify(ctx context.Context, src Source, opts VerifyOptions) (Report, error)
 	for _, p := range v.Problems() {
 		rep.Problems = append(rep.Problems, Problem{Kind: ProblemKind(p.Kind), ID: p.ID, LastID: p.LastID})
 	}
+	cpProblems, err := CheckCheckpoints(ctx, src, opts.Checkpoints)
+	if err != nil {
+		return rep, fmt.Errorf("audit: verify: %w", err)
+	}
+	rep.Problems = append(rep.Problems, cpProblems...)
 	sort.SliceStable(rep.Problems, func(i, j int) bool { return rep.Problems[i].ID < rep.Problems[j].ID })
 	for _, p := range rep.Problems {
 		log.WarnContext(ctx, "audit verify problem", "kind", string(p.Kind), "id", p.ID, "last_id", p.LastID)
