@@ -62,6 +62,28 @@ func (f *auditFilterFlags) filter(loc *time.Location) (store.Filter, error) {
 	return sf, nil
 }
 
+// openFiltered loads the configuration, turns the filter flags into a
+// store filter in the configured time zone and opens the store.
+func openFiltered(ctx context.Context, cfgPath string, ff *auditFilterFlags, name string) (store.Store, store.Filter, error) {
+	cfg, err := auditConfig(cfgPath)
+	if err != nil {
+		return nil, store.Filter{}, err
+	}
+	loc, err := cfg.Location()
+	if err != nil {
+		return nil, store.Filter{}, err
+	}
+	f, err := ff.filter(loc)
+	if err != nil {
+		return nil, store.Filter{}, fmt.Errorf("%s: %w", name, err)
+	}
+	s, err := openAuditStore(ctx, cfg, nil)
+	if err != nil {
+		return nil, store.Filter{}, fmt.Errorf("%s: %w", name, err)
+	}
+	return s, f, nil
+}
+
 // auditConfig loads the configuration file, or the built-in default.
 func auditConfig(path string) (*config.Config, error) {
 	if path == "" {
@@ -133,21 +155,9 @@ suppression code ("-" when empty). With --json, one JSON object per line.`,
   filtrate audit search --message-id MSG00042 --json`,
 		Args: cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
-			cfg, err := auditConfig(opts.config)
+			s, f, err := openFiltered(cmd.Context(), opts.config, &ff, "audit search")
 			if err != nil {
 				return err
-			}
-			loc, err := cfg.Location()
-			if err != nil {
-				return err
-			}
-			f, err := ff.filter(loc)
-			if err != nil {
-				return fmt.Errorf("audit search: %w", err)
-			}
-			s, err := openAuditStore(cmd.Context(), cfg, nil)
-			if err != nil {
-				return fmt.Errorf("audit search: %w", err)
 			}
 			defer s.Close()
 			if _, err := audit.Export(cmd.Context(), s, f, audit.NewSearchWriter(cmd.OutOrStdout(), jsonOut)); err != nil {
@@ -346,21 +356,9 @@ With --out the file is written completely (mode 0600) or not at all.`,
 			if format != "csv" && format != "fhir" {
 				return fmt.Errorf("audit export: --format: want csv or fhir, not %q", format)
 			}
-			cfg, err := auditConfig(opts.config)
+			s, f, err := openFiltered(cmd.Context(), opts.config, &ff, "audit export")
 			if err != nil {
 				return err
-			}
-			loc, err := cfg.Location()
-			if err != nil {
-				return err
-			}
-			f, err := ff.filter(loc)
-			if err != nil {
-				return fmt.Errorf("audit export: %w", err)
-			}
-			s, err := openAuditStore(cmd.Context(), cfg, nil)
-			if err != nil {
-				return fmt.Errorf("audit export: %w", err)
 			}
 			defer s.Close()
 			var n int64

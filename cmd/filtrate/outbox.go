@@ -7,19 +7,22 @@ import (
 
 	"github.com/spf13/cobra"
 
-	"filtrate/config"
 	"filtrate/store"
 )
 
-func openStoreFromConfig(cmd *cobra.Command, path string) (store.Store, error) {
-	cfg := config.Default()
-	if path != "" {
-		var err error
-		if cfg, err = config.LoadFile(path); err != nil {
-			return nil, err
-		}
+// withStore opens the store the configuration names (without migrating
+// it), runs fn and closes the store.
+func withStore(cmd *cobra.Command, cfgPath string, fn func(store.Store) error) error {
+	cfg, err := auditConfig(cfgPath)
+	if err != nil {
+		return err
 	}
-	return store.Open(cmd.Context(), cfg.Store)
+	s, err := openAuditStore(cmd.Context(), cfg, nil)
+	if err != nil {
+		return err
+	}
+	defer s.Close()
+	return fn(s)
 }
 
 func newOutboxCmd() *cobra.Command {
@@ -38,21 +41,18 @@ once the cause is fixed downstream.`,
 		Short: "Show pending, in-flight and parked counts per destination",
 		Args:  cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
-			s, err := openStoreFromConfig(cmd, cfgPath)
-			if err != nil {
-				return err
-			}
-			defer s.Close()
-			stats, err := s.OutboxStats(cmd.Context())
-			if err != nil {
-				return err
-			}
-			out := cmd.OutOrStdout()
-			fmt.Fprintln(out, "destination\tpending\tin_flight\toldest_pending\tparked")
-			for _, st := range stats {
-				fmt.Fprintf(out, "%s\t%d\t%d\t%s\t%d\n", st.Destination, st.Pending, st.InFlight, st.OldestPendingAge.Round(time.Second), st.Parked)
-			}
-			return nil
+			return withStore(cmd, cfgPath, func(s store.Store) error {
+				stats, err := s.OutboxStats(cmd.Context())
+				if err != nil {
+					return err
+				}
+				out := cmd.OutOrStdout()
+				fmt.Fprintln(out, "destination\tpending\tin_flight\toldest_pending\tparked")
+				for _, st := range stats {
+					fmt.Fprintf(out, "%s\t%d\t%d\t%s\t%d\n", st.Destination, st.Pending, st.InFlight, st.OldestPendingAge.Round(time.Second), st.Parked)
+				}
+				return nil
+			})
 		},
 	})
 	cmd.AddCommand(&cobra.Command{
@@ -60,22 +60,19 @@ once the cause is fixed downstream.`,
 		Short: "List parked messages",
 		Args:  cobra.NoArgs,
 		RunE: func(cmd *cobra.Command, _ []string) error {
-			s, err := openStoreFromConfig(cmd, cfgPath)
-			if err != nil {
-				return err
-			}
-			defer s.Close()
-			items, err := s.ListParked(cmd.Context())
-			if err != nil {
-				return err
-			}
-			out := cmd.OutOrStdout()
-			fmt.Fprintln(out, "id\tdestination\tmessage_id\tattempts\tparked_at\treason")
-			for _, it := range items {
-				fmt.Fprintf(out, "%d\t%s\t%s\t%d\t%s\t%s\n", it.ID, it.Destination, it.MessageID, it.Attempts, it.ParkedAt.UTC().Format(time.RFC3339), it.LastError)
-			}
-			fmt.Fprintf(out, "%d parked\n", len(items))
-			return nil
+			return withStore(cmd, cfgPath, func(s store.Store) error {
+				items, err := s.ListParked(cmd.Context())
+				if err != nil {
+					return err
+				}
+				out := cmd.OutOrStdout()
+				fmt.Fprintln(out, "id\tdestination\tmessage_id\tattempts\tparked_at\treason")
+				for _, it := range items {
+					fmt.Fprintf(out, "%d\t%s\t%s\t%d\t%s\t%s\n", it.ID, it.Destination, it.MessageID, it.Attempts, it.ParkedAt.UTC().Format(time.RFC3339), it.LastError)
+				}
+				fmt.Fprintf(out, "%d parked\n", len(items))
+				return nil
+			})
 		},
 	})
 	cmd.AddCommand(&cobra.Command{
@@ -87,16 +84,13 @@ once the cause is fixed downstream.`,
 			if err != nil {
 				return fmt.Errorf("outbox requeue: ID must be a number")
 			}
-			s, err := openStoreFromConfig(cmd, cfgPath)
-			if err != nil {
-				return err
-			}
-			defer s.Close()
-			if err := s.Requeue(cmd.Context(), id); err != nil {
-				return fmt.Errorf("outbox requeue %d: %w", id, err)
-			}
-			fmt.Fprintf(cmd.OutOrStdout(), "outbox item %d requeued; a running daemon sends it at its next poll\n", id)
-			return nil
+			return withStore(cmd, cfgPath, func(s store.Store) error {
+				if err := s.Requeue(cmd.Context(), id); err != nil {
+					return fmt.Errorf("outbox requeue %d: %w", id, err)
+				}
+				fmt.Fprintf(cmd.OutOrStdout(), "outbox item %d requeued; a running daemon sends it at its next poll\n", id)
+				return nil
+			})
 		},
 	})
 	return cmd
