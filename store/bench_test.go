@@ -11,8 +11,8 @@ import (
 	"testing"
 	"time"
 
-	"filtrate/store"
 	"filtrate/internal/pgtest"
+	"filtrate/store"
 )
 
 // benchParallelism makes RunParallel use 8 goroutines per CPU, enough

@@ -12,8 +12,8 @@ import (
 	"github.com/lib/pq"
 	"github.com/stretchr/testify/require"
 
-	"filtrate/store"
 	"filtrate/internal/pgtest"
+	"filtrate/store"
 )
 
 // sqlBlocks returns the ```sql blocks of a Markdown file.
