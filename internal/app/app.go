@@ -151,6 +151,9 @@ func New(ctx context.Context, opts Options) (a *App, err error) {
 	if err := a.setupHL7(cfg); err != nil {
 		return nil, err
 	}
+	if err := a.setupFHIR(cfg); err != nil {
+		return nil, err
+	}
 	if err := a.setupHTTP(cfg); err != nil {
 		return nil, err
 	}

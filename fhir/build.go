@@ -1,0 +1,633 @@
+package fhir
+
+import (
+	"crypto/sha256"
+	"encoding/hex"
+	"fmt"
+	"strconv"
+	"strings"
+	"time"
+
+	cpb "github.com/google/fhir/go/proto/google/fhir/proto/r4/core/codes_go_proto"
+	dpb "github.com/google/fhir/go/proto/google/fhir/proto/r4/core/datatypes_go_proto"
+	bcrpb "github.com/google/fhir/go/proto/google/fhir/proto/r4/core/resources/bundle_and_contained_resource_go_proto"
+	opb "github.com/google/fhir/go/proto/google/fhir/proto/r4/core/resources/observation_go_proto"
+	oopb "github.com/google/fhir/go/proto/google/fhir/proto/r4/core/resources/operation_outcome_go_proto"
+	provpb "github.com/google/fhir/go/proto/google/fhir/proto/r4/core/resources/provenance_go_proto"
+	"google.golang.org/protobuf/reflect/protoreflect"
+	"google.golang.org/protobuf/types/known/anypb"
+
+	"filtrate/calc"
+	"filtrate/hl7v2"
+)
+
+// Meta is what the outputs state about how they were produced.
+type Meta struct {
+	// Now is the time written to Observation.issued, Provenance.recorded
+	// and Bundle.timestamp.
+	Now time.Time
+	// SoftwareVersion and ConfigHash are filtrate's version and the hash
+	// of the configuration in force.
+	SoftwareVersion string
+	ConfigHash      string
+	// Retractions are the eGFR observations the policy can report (see
+	// ingest.RetractionTemplates), withdrawn when an input is entered in
+	// error. Only Equation, EquationName, LOINC, LOINCName, Unit and Uses
+	// are read.
+	Retractions []calc.Result
+	// Duplicate tells that the request had been received before: nothing
+	// new was recorded.
+	Duplicate bool
+}
+
+// GroupResult is the calculation outcome of one Group (aligned with
+// Extraction.Groups).
+type GroupResult struct {
+	Outcome calc.Outcome
+	// RecordIDs are the audit record IDs of Outcome.Results, in order;
+	// nil when not known (before commit).
+	RecordIDs []int64
+}
+
+// output is one computed resource.
+type output struct {
+	typ, id, fullURL string
+	res              *bcrpb.ContainedResource
+}
+
+// built is everything the outputs of a request hold.
+type built struct {
+	resources []output
+	issues    []Issue
+	// notes are annotations added to the forwarded copy of an input
+	// Observation, saying why no eGFR was added.
+	notes map[*entry][]string
+}
+
+// resultID returns the id of the eGFR Observation of a patient, collection
+// time, equation and assumed sex: the first 128 bits of a SHA-256, in hex.
+func resultID(g *Group, equation, assumedSex string) string {
+	at := ""
+	if !g.CollectedAt.IsZero() {
+		at = g.CollectedAt.UTC().Format(time.RFC3339Nano)
+	}
+	h := sha256.Sum256([]byte(strings.Join([]string{g.Patient.ID, at, equation, assumedSex}, "\x00")))
+	return hex.EncodeToString(h[:16])
+}
+
+// build makes the computed resources and issues. withRecords adds the
+// audit record IDs to the Provenances.
+func (x *Extraction) build(res []GroupResult, meta Meta, withRecords bool) (*built, error) {
+	if len(res) != len(x.Groups) {
+		return nil, fmt.Errorf("fhir: %d outcomes for %d groups", len(res), len(x.Groups))
+	}
+	b := &built{notes: map[*entry][]string{}}
+	seen := map[string]bool{}
+	addIssue := func(is Issue, anchor *Observation) {
+		key := is.Code + "\x00" + is.Details + "\x00" + strings.Join(is.Expression, ",")
+		if seen[key] {
+			return
+		}
+		seen[key] = true
+		b.issues = append(b.issues, is)
+		if anchor != nil {
+			b.notes[anchor.entry] = append(b.notes[anchor.entry], is.Details)
+		}
+	}
+	for _, n := range x.Notes {
+		var anchor *Observation
+		for _, o := range x.Inputs {
+			if len(n.Expression) > 0 && o.Expression == n.Expression[0] {
+				anchor = o
+			}
+		}
+		addIssue(n, anchor)
+	}
+	for gi, g := range x.Groups {
+		out := res[gi].Outcome
+		for ri, r := range out.Results {
+			var recID int64
+			if withRecords && ri < len(res[gi].RecordIDs) {
+				recID = res[gi].RecordIDs[ri]
+			}
+			o, p, err := x.result(g, &out, r, meta, recID)
+			if err != nil {
+				return nil, err
+			}
+			b.resources = append(b.resources, o, p)
+		}
+		done := map[string]bool{}
+		for _, w := range g.Withdrawn {
+			for _, tpl := range meta.Retractions {
+				if !uses(tpl.Uses, w.Analyte) || !g.reports(tpl.Uses) || done[tpl.Equation] {
+					continue
+				}
+				done[tpl.Equation] = true
+				b.resources = append(b.resources, x.withdrawal(g, w, tpl, meta))
+			}
+		}
+		for _, rf := range out.Refusals {
+			anchor := g.refusalAnchor(rf)
+			is := Issue{Severity: "warning", Code: "business-rule", Reason: string(rf.Code), Details: rf.Message, Diagnostics: rf.Message}
+			if is.Details == "" {
+				is.Details = rf.Code.Describe()
+				is.Diagnostics = is.Details
+			}
+			if anchor != nil {
+				is.Expression = []string{anchor.Expression}
+			}
+			addIssue(is, anchor)
+		}
+	}
+	if meta.Duplicate {
+		addIssue(Issue{Severity: "information", Code: "informational",
+			Details:     "this request was received before; nothing new was recorded",
+			Diagnostics: "This request was received before; nothing new was recorded. The results are those of the first copy."}, nil)
+	}
+	if len(b.issues) == 0 && len(x.Groups) == 0 {
+		text := "No creatinine or cystatin C result was recognised: nothing was calculated."
+		b.issues = append(b.issues, Issue{Severity: "information", Code: "informational", Details: text, Diagnostics: text})
+	}
+	if len(b.issues) == 0 {
+		n := 0
+		for _, r := range res {
+			n += len(r.Outcome.Results)
+		}
+		text := fmt.Sprintf("Accepted and recorded: %d calculated result(s).", n)
+		b.issues = append(b.issues, Issue{Severity: "information", Code: "informational", Details: text, Diagnostics: text})
+	}
+	return b, nil
+}
+
+func uses(list []calc.Analyte, a calc.Analyte) bool {
+	for _, u := range list {
+		if u == a {
+			return true
+		}
+	}
+	return false
+}
+
+// reports tells whether the group holds an input of every analyte, in any
+// status: only then can an eGFR from all of them have been sent.
+func (g *Group) reports(analytes []calc.Analyte) bool {
+	for _, a := range analytes {
+		found := false
+		for _, o := range append(append([]*Observation(nil), g.Inputs...), g.Withdrawn...) {
+			if o.Analyte == a {
+				found = true
+				break
+			}
+		}
+		if !found {
+			return false
+		}
+	}
+	return true
+}
+
+func (g *Group) bySource(id string) *Observation {
+	if id == "" {
+		return nil
+	}
+	for _, o := range append(append([]*Observation(nil), g.Inputs...), g.Borrowed...) {
+		if o.SourceID == id {
+			return o
+		}
+	}
+	return nil
+}
+
+// refusalAnchor finds the input a refusal is about: by source, else the
+// first usable input of its analyte, else the group's first creatinine or
+// cystatin C input.
+func (g *Group) refusalAnchor(rf calc.Refusal) *Observation {
+	if o := g.bySource(rf.SourceID); o != nil {
+		return o
+	}
+	if rf.Analyte != "" {
+		for _, o := range g.Inputs {
+			if o.Analyte == rf.Analyte && o.Action == hl7v2.StatusCompute {
+				return o
+			}
+		}
+	}
+	for _, o := range g.Inputs {
+		if primary(o.Analyte) && o.Action == hl7v2.StatusCompute {
+			return o
+		}
+	}
+	for _, o := range g.Inputs {
+		if primary(o.Analyte) {
+			return o
+		}
+	}
+	if len(g.Withdrawn) > 0 {
+		return g.Withdrawn[0]
+	}
+	return nil
+}
+
+// used finds the inputs a result was computed from: those calc reports for
+// each analyte the equation uses, else the first usable input of that
+// analyte.
+func (g *Group) used(out *calc.Outcome, r calc.Result) []*Observation {
+	var used []*Observation
+	for _, a := range r.Uses {
+		var found *Observation
+		for _, in := range out.Inputs {
+			if in.Analyte == a {
+				if o := g.bySource(in.SourceID); o != nil {
+					found = o
+					break
+				}
+			}
+		}
+		if found == nil {
+			for _, o := range g.Inputs {
+				if o.Analyte == a && o.Action == hl7v2.StatusCompute {
+					found = o
+					break
+				}
+			}
+		}
+		if found != nil {
+			used = append(used, found)
+		}
+	}
+	return used
+}
+
+// combinedStatus is the status of a value derived from inputs: the least
+// final of theirs (preliminary, then corrected, then amended, then final).
+func combinedStatus(used []*Observation) cpb.ObservationStatusCode_Value {
+	rank := map[string]int{"final": 1, "amended": 2, "corrected": 3, "preliminary": 4}
+	best := "final"
+	for _, o := range used {
+		if rank[o.Status] > rank[best] {
+			best = o.Status
+		}
+	}
+	return cpb.ObservationStatusCode_Value(cpb.ObservationStatusCode_Value_value[strings.ToUpper(best)])
+}
+
+// subject sets the subject of an output Observation, containing a copy of
+// the Patient when the input contained it.
+func (g *Group) subject(o *opb.Observation) {
+	if g.Patient.contained != nil {
+		o.Contained = []*anypb.Any{clone(g.Patient.contained)}
+	}
+	o.Subject = reference(g.Patient.subject)
+}
+
+func resultText(r calc.Result) string {
+	text := r.EquationName
+	if r.Unit == calc.UnitIndexed {
+		text = "eGFR (" + r.EquationName + ")"
+	}
+	if r.AssumedSex != "" {
+		text += ", calculated as if " + r.AssumedSex
+	}
+	return text
+}
+
+func (x *Extraction) result(g *Group, out *calc.Outcome, r calc.Result, meta Meta, recordID int64) (output, output, error) {
+	h := resultID(g, r.Equation, r.AssumedSex)
+	obsID, provID := "egfr-"+h, "prov-"+h
+	obsURL, provURL := "urn:uuid:"+uuidFrom("Observation/"+obsID), "urn:uuid:"+uuidFrom("Provenance/"+provID)
+	used := g.used(out, r)
+
+	o := &opb.Observation{
+		Id:       &dpb.Id{Value: obsID},
+		Status:   &opb.Observation_StatusCode{Value: combinedStatus(used)},
+		Category: []*dpb.CodeableConcept{concept("", coding(SystemObsCategory, "laboratory", "Laboratory"))},
+		Issued:   instant(meta.Now),
+		Method: concept(r.EquationName+", implementation version "+r.EquationVersion,
+			&dpb.Coding{System: uri(SystemEquation), Version: str(r.EquationVersion), Code: code(r.Equation), Display: str(r.EquationName)}),
+	}
+	if r.LOINC != "" {
+		o.Code = concept(resultText(r), coding(SystemLOINC, r.LOINC, r.LOINCName))
+	} else {
+		o.Code = concept(resultText(r))
+	}
+	g.subject(o)
+	if g.effective != nil {
+		o.Effective = &opb.Observation_EffectiveX{Choice: &opb.Observation_EffectiveX_DateTime{DateTime: clone(g.effective)}}
+	}
+	unit := r.Unit
+	if unit == "" {
+		unit = calc.UnitIndexed
+	}
+	cmp, num := splitComparator(r.Reported)
+	if r.Capped && cmp == "" {
+		cmp = ">"
+	}
+	if isDecimal(num) {
+		q := &dpb.Quantity{Value: &dpb.Decimal{Value: num}, Unit: str(unit), System: uri(SystemUCUM), Code: code(unit)}
+		if c, ok := comparatorCode(cmp); ok {
+			q.Comparator = &dpb.Quantity_ComparatorCode{Value: c}
+		}
+		o.Value = &opb.Observation_ValueX{Choice: &opb.Observation_ValueX_Quantity{Quantity: q}}
+	} else {
+		o.Value = &opb.Observation_ValueX{Choice: &opb.Observation_ValueX_StringValue{StringValue: str(r.Reported)}}
+	}
+	var notes []string
+	if r.Category != "" {
+		notes = append(notes, "KDIGO GFR category: "+r.Category)
+	}
+	notes = append(notes, r.Comments...)
+	for _, n := range notes {
+		o.Note = append(o.Note, &dpb.Annotation{Text: markdown(n)})
+	}
+	p := &provpb.Provenance{
+		Id:       &dpb.Id{Value: provID},
+		Target:   []*dpb.Reference{reference(obsURL)},
+		Recorded: instant(meta.Now),
+		Agent: []*provpb.Provenance_Agent{{
+			Type: concept("", coding(SystemProvAgent, "assembler", "Assembler")),
+			Who:  &dpb.Reference{Display: str("filtrate " + meta.SoftwareVersion)},
+		}},
+		Extension: []*dpb.Extension{
+			extCoding(ExtEquation, &dpb.Coding{System: uri(SystemEquation), Version: str(r.EquationVersion), Code: code(r.Equation), Display: str(r.EquationName)}),
+			extCoding(ExtPolicy, &dpb.Coding{System: uri(SystemPolicy), Version: str(out.PolicyVersion), Code: code(out.Policy)}),
+			extString(ExtConfigHash, meta.ConfigHash),
+			extString(ExtSoftware, meta.SoftwareVersion),
+			extString(ExtMessageID, x.Request.MessageID()),
+		},
+	}
+	if recordID > 0 {
+		p.Extension = append(p.Extension, extIdentifier(ExtAuditRecord, SystemAuditRecord, strconv.FormatInt(recordID, 10)))
+	}
+	for _, u := range used {
+		o.DerivedFrom = append(o.DerivedFrom, reference(u.entry.ref))
+		p.Entity = append(p.Entity, &provpb.Provenance_Entity{
+			Role: &provpb.Provenance_Entity_RoleCode{Value: cpb.ProvenanceEntityRoleCode_SOURCE},
+			What: reference(u.entry.ref),
+		})
+	}
+	return output{typ: "Observation", id: obsID, fullURL: obsURL, res: &bcrpb.ContainedResource{OneofResource: &bcrpb.ContainedResource_Observation{Observation: o}}},
+		output{typ: "Provenance", id: provID, fullURL: provURL, res: &bcrpb.ContainedResource{OneofResource: &bcrpb.ContainedResource_Provenance{Provenance: p}}},
+		nil
+}
+
+// withdrawal is the entered-in-error eGFR Observation that withdraws an
+// eGFR derived from a withdrawn input.
+func (x *Extraction) withdrawal(g *Group, w *Observation, tpl calc.Result, meta Meta) output {
+	id := "egfr-" + resultID(g, tpl.Equation, "")
+	o := &opb.Observation{
+		Id:       &dpb.Id{Value: id},
+		Status:   &opb.Observation_StatusCode{Value: cpb.ObservationStatusCode_ENTERED_IN_ERROR},
+		Category: []*dpb.CodeableConcept{concept("", coding(SystemObsCategory, "laboratory", "Laboratory"))},
+		Issued:   instant(meta.Now),
+		Method:   concept(tpl.EquationName, coding(SystemEquation, tpl.Equation, tpl.EquationName)),
+		Note: []*dpb.Annotation{{Text: markdown(
+			"eGFR withdrawn: the result it was calculated from was entered in error.")}},
+		DerivedFrom: []*dpb.Reference{reference(w.entry.ref)},
+	}
+	if tpl.LOINC != "" {
+		o.Code = concept(resultText(tpl), coding(SystemLOINC, tpl.LOINC, tpl.LOINCName))
+	} else {
+		o.Code = concept(resultText(tpl))
+	}
+	g.subject(o)
+	if g.effective != nil {
+		o.Effective = &opb.Observation_EffectiveX{Choice: &opb.Observation_EffectiveX_DateTime{DateTime: clone(g.effective)}}
+	}
+	return output{typ: "Observation", id: id, fullURL: "urn:uuid:" + uuidFrom("Observation/"+id),
+		res: &bcrpb.ContainedResource{OneofResource: &bcrpb.ContainedResource_Observation{Observation: o}}}
+}
+
+// splitComparator splits a reported value such as ">90" into its
+// comparator and number.
+func splitComparator(s string) (cmp, num string) {
+	for _, c := range []string{">=", "<=", ">", "<"} {
+		if rest, ok := strings.CutPrefix(s, c); ok {
+			return c, strings.TrimSpace(rest)
+		}
+	}
+	return "", s
+}
+
+// isDecimal reports whether s is a FHIR decimal (FHIR R4 datatypes,
+// decimal: -?(0|[1-9][0-9]*)(\.[0-9]+)?([eE][+-]?[0-9]+)?).
+func isDecimal(s string) bool {
+	i := 0
+	if strings.HasPrefix(s, "-") {
+		i++
+	}
+	digits := func() int {
+		n := 0
+		for i < len(s) && s[i] >= '0' && s[i] <= '9' {
+			i++
+			n++
+		}
+		return n
+	}
+	start := i
+	n := digits()
+	if n == 0 || (n > 1 && s[start] == '0') {
+		return false
+	}
+	if i < len(s) && s[i] == '.' {
+		i++
+		if digits() == 0 {
+			return false
+		}
+	}
+	if i < len(s) && (s[i] == 'e' || s[i] == 'E') {
+		i++
+		if i < len(s) && (s[i] == '+' || s[i] == '-') {
+			i++
+		}
+		if digits() == 0 {
+			return false
+		}
+	}
+	return i == len(s)
+}
+
+// operationOutcome builds an OperationOutcome of issues.
+func operationOutcome(issues []Issue) *oopb.OperationOutcome {
+	oo := &oopb.OperationOutcome{}
+	for _, is := range issues {
+		sev := cpb.IssueSeverityCode_Value(cpb.IssueSeverityCode_Value_value[enumName(is.Severity)])
+		if sev == cpb.IssueSeverityCode_INVALID_UNINITIALIZED {
+			sev = cpb.IssueSeverityCode_ERROR
+		}
+		typ := cpb.IssueTypeCode_Value(cpb.IssueTypeCode_Value_value[enumName(is.Code)])
+		if typ == cpb.IssueTypeCode_INVALID_UNINITIALIZED {
+			typ = cpb.IssueTypeCode_PROCESSING
+		}
+		oi := &oopb.OperationOutcome_Issue{
+			Severity: &oopb.OperationOutcome_Issue_SeverityCode{Value: sev},
+			Code:     &oopb.OperationOutcome_Issue_CodeType{Value: typ},
+		}
+		diag := is.Diagnostics
+		if diag == "" {
+			diag = is.Details
+		}
+		text := ""
+		if is.Details != diag {
+			text = is.Details
+		}
+		switch {
+		case is.Reason != "":
+			oi.Details = concept(text, coding(SystemRefusal, is.Reason, ""))
+		case text != "":
+			oi.Details = concept(text)
+		}
+		if diag != "" {
+			oi.Diagnostics = str(diag)
+		}
+		for _, e := range is.Expression {
+			oi.Expression = append(oi.Expression, str(e))
+		}
+		for _, l := range is.Location {
+			oi.Location = append(oi.Location, str(l))
+		}
+		oo.Issue = append(oo.Issue, oi)
+	}
+	return oo
+}
+
+func enumName(code string) string { return strings.ToUpper(strings.ReplaceAll(code, "-", "_")) }
+
+// OperationOutcome writes an OperationOutcome of issues, for error answers.
+func (c *Codec) OperationOutcome(issues []Issue) ([]byte, error) {
+	return c.Marshal(&bcrpb.ContainedResource{OneofResource: &bcrpb.ContainedResource_OperationOutcome{OperationOutcome: operationOutcome(issues)}})
+}
+
+// Response writes the answer to a request: a Bundle (transaction-response,
+// batch-response, or collection for a collection Bundle or a single
+// Observation) holding, for a transaction or batch, one entry per request
+// entry with status "200 OK" (accepted for calculation; filtrate stores no
+// FHIR resources), then the computed Observations and Provenances, then an
+// OperationOutcome with refusals and notes.
+func (c *Codec) Response(x *Extraction, res []GroupResult, meta Meta) ([]byte, error) {
+	b, err := x.build(res, meta, true)
+	if err != nil {
+		return nil, err
+	}
+	bt := cpb.BundleTypeCode_COLLECTION
+	switch x.Request.BundleType {
+	case "transaction":
+		bt = cpb.BundleTypeCode_TRANSACTION_RESPONSE
+	case "batch":
+		bt = cpb.BundleTypeCode_BATCH_RESPONSE
+	}
+	withResponse := bt != cpb.BundleTypeCode_COLLECTION
+	ok := func() *bcrpb.Bundle_Entry_Response {
+		if !withResponse {
+			return nil
+		}
+		return &bcrpb.Bundle_Entry_Response{Status: str("200 OK")}
+	}
+	bundle := &bcrpb.Bundle{
+		Type:      &bcrpb.Bundle_TypeCode{Value: bt},
+		Timestamp: instant(meta.Now),
+	}
+	if withResponse {
+		for range x.Request.entryCount() {
+			bundle.Entry = append(bundle.Entry, &bcrpb.Bundle_Entry{Response: ok()})
+		}
+	}
+	for _, r := range b.resources {
+		bundle.Entry = append(bundle.Entry, &bcrpb.Bundle_Entry{FullUrl: uri(r.fullURL), Resource: r.res, Response: ok()})
+	}
+	oo := &bcrpb.ContainedResource{OneofResource: &bcrpb.ContainedResource_OperationOutcome{OperationOutcome: operationOutcome(b.issues)}}
+	bundle.Entry = append(bundle.Entry, &bcrpb.Bundle_Entry{
+		FullUrl: uri("urn:uuid:" + uuidFrom(x.Request.DedupKey()+"\x00OperationOutcome")), Resource: oo, Response: ok(),
+	})
+	return c.Marshal(&bcrpb.ContainedResource{OneofResource: &bcrpb.ContainedResource_Bundle{Bundle: bundle}})
+}
+
+// Forward writes the transaction Bundle sent downstream: the request's
+// resources (an input Observation that gives no eGFR carries a note saying
+// why) with their own request, or PUT [type]/[id] when they have an id and
+// POST otherwise, followed by the computed Observations and Provenances,
+// each PUT to its derived id so that a resent, corrected or withdrawn eGFR
+// replaces the one sent before. It returns the Bundle id (also its
+// identifier value in urn:filtrate:message), which is the outbox message ID.
+// Patients looked up from the patient source are not included.
+func (c *Codec) Forward(x *Extraction, res []GroupResult, meta Meta) (id string, payload []byte, err error) {
+	b, err := x.build(res, meta, false)
+	if err != nil {
+		return "", nil, err
+	}
+	sum := sha256.Sum256([]byte(x.Request.DedupKey()))
+	id = "filtrate-" + hex.EncodeToString(sum[:16])
+	bundle := &bcrpb.Bundle{
+		Id:         &dpb.Id{Value: id},
+		Identifier: &dpb.Identifier{System: uri(SystemMessage), Value: str(id)},
+		Type:       &bcrpb.Bundle_TypeCode{Value: cpb.BundleTypeCode_TRANSACTION},
+		Timestamp:  instant(meta.Now),
+	}
+	for _, e := range x.Request.entries {
+		cr := clone(e.res)
+		if o := cr.GetObservation(); o != nil {
+			for _, n := range b.notes[e] {
+				o.Note = append(o.Note, &dpb.Annotation{Text: markdown(n)})
+			}
+		}
+		typ, rid := resourceTypeID(cr)
+		be := &bcrpb.Bundle_Entry{Resource: cr}
+		switch {
+		case e.fullURL != "":
+			be.FullUrl = uri(e.fullURL)
+		case strings.HasPrefix(e.ref, "urn:uuid:"):
+			be.FullUrl = uri(e.ref)
+		}
+		switch {
+		case e.request != nil:
+			be.Request = clone(e.request)
+		case rid != "":
+			be.Request = entryRequest(cpb.HTTPVerbCode_PUT, typ+"/"+rid)
+		default:
+			be.Request = entryRequest(cpb.HTTPVerbCode_POST, typ)
+			if be.FullUrl == nil {
+				be.FullUrl = uri("urn:uuid:" + uuidFrom(x.Request.DedupKey()+"\x00"+e.expr))
+			}
+		}
+		bundle.Entry = append(bundle.Entry, be)
+	}
+	for _, r := range b.resources {
+		bundle.Entry = append(bundle.Entry, &bcrpb.Bundle_Entry{
+			FullUrl: uri(r.fullURL), Resource: r.res, Request: entryRequest(cpb.HTTPVerbCode_PUT, r.typ+"/"+r.id),
+		})
+	}
+	payload, err = c.Marshal(&bcrpb.ContainedResource{OneofResource: &bcrpb.ContainedResource_Bundle{Bundle: bundle}})
+	if err != nil {
+		return "", nil, err
+	}
+	return id, payload, nil
+}
+
+func entryRequest(method cpb.HTTPVerbCode_Value, url string) *bcrpb.Bundle_Entry_Request {
+	return &bcrpb.Bundle_Entry_Request{
+		Method: &bcrpb.Bundle_Entry_Request_MethodCode{Value: method},
+		Url:    uri(url),
+	}
+}
+
+// resourceTypeID returns the resource type (the message name, which is the
+// FHIR type name) and the logical id of a contained resource.
+func resourceTypeID(cr *bcrpb.ContainedResource) (typ, id string) {
+	m := cr.ProtoReflect()
+	od := m.Descriptor().Oneofs().ByName("oneof_resource")
+	if od == nil {
+		return "", ""
+	}
+	fd := m.WhichOneof(od)
+	if fd == nil {
+		return "", ""
+	}
+	r := m.Get(fd).Message()
+	typ = string(r.Descriptor().Name())
+	if idf := r.Descriptor().Fields().ByName("id"); idf != nil && r.Has(idf) {
+		idm := r.Get(idf).Message()
+		if vf := idm.Descriptor().Fields().ByName("value"); vf != nil && vf.Kind() == protoreflect.StringKind {
+			id = idm.Get(vf).String()
+		}
+	}
+	return typ, id
+}
