@@ -153,3 +153,18 @@ func TestAuditCheckpointCommand(t *testing.T) {
 	require.NoError(t, err, out)
 	require.Contains(t, out, "audit verify: OK: 11 records")
 }
+
+func TestDryrunFHIR(t *testing.T) {
+	req := filepath.Join("..", "..", "testdata", "fhir", "transaction-creatinine.request.json")
+	out, _, err := runCLI(t, "", "dryrun", req)
+	require.NoError(t, err)
+	require.Contains(t, out, "FHIR  HTTP 200")
+	require.Contains(t, out, `"type": "transaction"`, "the transaction Bundle that would be forwarded")
+	require.Contains(t, out, `"code": "98979-8"`)
+
+	out, _, err = runCLI(t, `{"resourceType":"Patient"}`, "dryrun", "-")
+	var ec exitCode
+	require.ErrorAs(t, err, &ec)
+	require.Contains(t, out, "FHIR  HTTP 400")
+	require.Contains(t, out, `"resourceType": "OperationOutcome"`)
+}

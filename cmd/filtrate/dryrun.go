@@ -2,6 +2,7 @@ package main
 
 import (
 	"bytes"
+	"encoding/json"
 	"fmt"
 	"io"
 	"os"
@@ -12,6 +13,7 @@ import (
 
 	"filtrate/calc"
 	"filtrate/config"
+	"filtrate/fhir"
 	"filtrate/hl7v2"
 	"filtrate/internal/ingest"
 	"filtrate/internal/pipeline"
@@ -26,12 +28,15 @@ func newDryrunCmd(version string) *cobra.Command {
 	cmd := &cobra.Command{
 		Use:   "dryrun [--config FILE] [--diff] FILE...",
 		Short: "Run message files through the pipeline offline and print what would be sent",
-		Long: `Run HL7 v2 message files through exactly the code path of the daemon (parsing,
-mapping, calibration, policy, equations, enrichment, acknowledgement) with a
-temporary store that is deleted afterwards, and print for each message the
-acknowledgement the sender would get and the message that would be forwarded.
-Nothing is sent anywhere. A file may hold several messages; "-" reads standard
-input. With --diff only added (+) and changed (~) segments are printed.`,
+		Long: `Run HL7 v2 message files and FHIR JSON requests through exactly the code path
+of the daemon (parsing, mapping, calibration, policy, equations, enrichment,
+acknowledgement) with a temporary store that is deleted afterwards, and print
+for each message the answer the sender would get and what would be forwarded.
+Nothing is sent anywhere. An HL7 v2 file may hold several messages; a file
+starting with '{' is one FHIR request (a Bundle, or one Observation); "-" reads
+standard input. With --diff only added (+) and changed (~) HL7 v2 segments are
+printed, and for FHIR the answer (computed resources and issues) instead of the
+forwarded transaction.`,
 		Args: cobra.MinimumNArgs(1),
 		RunE: func(cmd *cobra.Command, files []string) error {
 			cfg := config.Default()
@@ -41,7 +46,7 @@ input. With --diff only added (+) and changed (~) segments are printed.`,
 					return err
 				}
 			}
-			msgs, names, err := readMessages(cmd.InOrStdin(), files)
+			inputs, err := readInputs(cmd.InOrStdin(), files)
 			if err != nil {
 				return err
 			}
@@ -60,14 +65,38 @@ input. With --diff only added (+) and changed (~) segments are printed.`,
 			if err != nil {
 				return err
 			}
-			st.ForwardHL7 = true // show what would be forwarded even without a peer
-			h := &ingest.HL7{Proc: pipeline.NewProcessor(c, s, version, nil), State: func() *ingest.State { return st }}
+			// Show what would be forwarded even without a configured peer.
+			st.ForwardHL7, st.ForwardFHIR = true, true
+			proc := pipeline.NewProcessor(c, s, version, nil)
+			h := &ingest.HL7{Proc: proc, State: func() *ingest.State { return st }}
+			codec, err := fhir.NewCodec()
+			if err != nil {
+				return err
+			}
+			fh := &ingest.FHIR{Proc: proc, State: func() *ingest.State { return st }, Codec: codec, Version: version, Site: cfg.Site}
 			out := cmd.OutOrStdout()
 			notAA := 0
-			for i, m := range msgs {
+			for _, in := range inputs {
+				if in.fhir {
+					p := fh.Handle(cmd.Context(), in.endpoint, in.data)
+					fmt.Fprintf(out, "### %s  FHIR  HTTP %d", in.name, p.Status)
+					if p.Code != hl7v2.AckAccept {
+						notAA++
+					} else if p.Duplicate {
+						fmt.Fprint(out, "  (duplicate: would not be forwarded again)")
+					}
+					fmt.Fprintln(out)
+					body := p.Forwarded
+					if opts.diff || body == nil {
+						body = p.Body // the answer: computed resources and issues
+					}
+					writeJSON(out, body)
+					continue
+				}
+				m := in.data
 				p := h.Handle(cmd.Context(), m)
 				ack, _ := hl7v2.ParseACK(p.Ack)
-				fmt.Fprintf(out, "### %s  message %s  ACK %s", names[i], ack.ControlID, p.Code)
+				fmt.Fprintf(out, "### %s  message %s  ACK %s", in.name, ack.ControlID, p.Code)
 				if p.Code != hl7v2.AckAccept {
 					notAA++
 					fmt.Fprintf(out, "  %s %s", ack.ErrorCode, ack.Text)
@@ -134,4 +163,58 @@ func sameSegmentType(a, b string) bool {
 func renumbered(a, b string) bool {
 	fa, fb := strings.SplitN(a, "|", 3), strings.SplitN(b, "|", 3)
 	return len(fa) == 3 && len(fb) == 3 && fa[2] == fb[2]
+}
+
+// input is one message to dry-run: an HL7 v2 message, or a FHIR request.
+type input struct {
+	name     string
+	data     []byte
+	fhir     bool
+	endpoint fhir.Endpoint
+}
+
+// readInputs reads the files ("-" is standard input). A file whose first
+// non-blank byte is '{' is one FHIR request (a Bundle, or an Observation as
+// posted to [base]/Observation); any other file holds HL7 v2 messages.
+func readInputs(stdin io.Reader, files []string) ([]input, error) {
+	var out []input
+	for _, f := range files {
+		var data []byte
+		var err error
+		if f == "-" {
+			data, err = io.ReadAll(stdin)
+		} else {
+			data, err = os.ReadFile(f)
+		}
+		if err != nil {
+			return nil, fmt.Errorf("read %s: %w", f, err)
+		}
+		if t := bytes.TrimSpace(data); len(t) > 0 && t[0] == '{' {
+			var head struct {
+				ResourceType string `json:"resourceType"`
+			}
+			_ = json.Unmarshal(t, &head) // a broken request is refused by the handler, with its reason
+			ep := fhir.EndpointBundle
+			if head.ResourceType == "Observation" {
+				ep = fhir.EndpointObservation
+			}
+			out = append(out, input{name: f, data: data, fhir: true, endpoint: ep})
+			continue
+		}
+		for _, m := range hl7v2.SplitMessages(data) {
+			out = append(out, input{name: f, data: m})
+		}
+	}
+	return out, nil
+}
+
+// writeJSON prints JSON indented for reading.
+func writeJSON(w io.Writer, b []byte) {
+	var buf bytes.Buffer
+	if err := json.Indent(&buf, b, "", "  "); err != nil {
+		w.Write(b)
+	} else {
+		w.Write(buf.Bytes())
+	}
+	fmt.Fprintln(w)
 }

@@ -59,7 +59,7 @@ func (a *App) setupFHIR(cfg *config.Config) error {
 			Poll:        a.opts.ForwardPoll,
 			SendTimeout: fhirSendTimeout,
 			Metrics:     a.metrics,
-			Logger:      a.log.With("destination", ingest.DestinationFHIR),
+			Logger:      a.log,
 		}
 		w.Init()
 		a.workers = append(a.workers, w)
