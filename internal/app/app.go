@@ -154,6 +154,7 @@ func New(ctx context.Context, opts Options) (a *App, err error) {
 	if err := a.setupFHIR(cfg); err != nil {
 		return nil, err
 	}
+	a.routes = append(a.routes, a.auditRoutes()...)
 	if err := a.setupHTTP(cfg); err != nil {
 		return nil, err
 	}

@@ -301,3 +301,50 @@ http:
 	require.True(t, v.OK(), "%v", v.Problems())
 	require.Equal(t, patients*perPatient, n)
 }
+
+func TestAuditView(t *testing.T) {
+	t.Setenv("FILTRATE_TEST_TOKEN", "audit-view-token-for-tests")
+	dir := t.TempDir()
+	path := filepath.Join(dir, "filtrate.yml")
+	require.NoError(t, os.WriteFile(path, []byte(fmt.Sprintf(`store: file:%s
+timezone: UTC
+hl7v2:
+  listen: 127.0.0.1:0
+http:
+  listen: 127.0.0.1:0
+  auth:
+    bearer_token_env: [FILTRATE_TEST_TOKEN]
+`, filepath.Join(dir, "v.db"))), 0o644))
+	r := startFromFile(t, path, nil)
+	require.Equal(t, "AA", send(t, r.app.HL7Addr(), oru("V1", "P7", "0.92")).Code)
+	base := "http://" + r.app.HTTPAddr()
+	getAuth := func(url, token string) (int, string) {
+		req, err := http.NewRequest(http.MethodGet, url, nil)
+		require.NoError(t, err)
+		if token != "" {
+			req.Header.Set("Authorization", "Bearer "+token)
+		}
+		resp, err := http.DefaultClient.Do(req)
+		require.NoError(t, err)
+		defer resp.Body.Close()
+		var b bytes.Buffer
+		_, _ = b.ReadFrom(resp.Body)
+		return resp.StatusCode, b.String()
+	}
+	code, _ := getAuth(base+"/audit?patient=P7%5E%5E%5ELAB", "")
+	require.Equal(t, http.StatusUnauthorized, code, "the audit view shows patient data: authentication required")
+	code, body := getAuth(base+"/audit?patient=P7%5E%5E%5ELAB", "audit-view-token-for-tests")
+	require.Equal(t, http.StatusOK, code)
+	require.Contains(t, body, `"message_id":"V1"`)
+	require.Contains(t, body, `"equation":"ckd-epi-2021-cr"`)
+	code, body = getAuth(base+"/audit/1", "audit-view-token-for-tests")
+	require.Equal(t, http.StatusOK, code)
+	require.Contains(t, body, "Recompute: match")
+	code, _ = getAuth(base+"/audit/999", "audit-view-token-for-tests")
+	require.Equal(t, http.StatusNotFound, code)
+	code, body = getAuth(base+"/audit/export?format=csv", "audit-view-token-for-tests")
+	require.Equal(t, http.StatusOK, code)
+	require.Contains(t, body, "V1")
+	code, _ = getAuth(base+"/audit?since=yesterday", "audit-view-token-for-tests")
+	require.Equal(t, http.StatusBadRequest, code)
+}
