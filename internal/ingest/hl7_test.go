@@ -193,6 +193,8 @@ func TestUncomputableResultsAreForwardedWithReason(t *testing.T) {
 		{"censored", "|NM|2160-0^Creatinine^LN||0.92|", "|SN|2160-0^Creatinine^LN||<^0.2|", "value-censored"},
 		{"implausible", "|0.92|mg/dL|", "|85|mg/dL|", "value-implausible"},
 		{"missing birth date", "||19720314|F", "|||F", "age-missing"},
+		{"birth year only", "||19720314|F", "||1972|F", "age-missing"}, // a partial date would shift the age: refused
+		{"collection date without day", "|||20261130071000\nOBX", "|||202611\nOBX", "age-missing"},
 		{"missing sex", "||19720314|F", "||19720314|", "sex-unknown"},
 		{"child without height", "||19720314|F", "||20190101|F", "height-missing"},
 	}
