@@ -350,13 +350,25 @@ func (c *Calculator) compute(p Policy, e Equation, in Inputs) (Result, error) {
 	}
 	if e.Unit == UnitIndexed {
 		r.Category = Category(rounded)
-		if p.NonIndexed && in.HeightCM > 0 && in.WeightKG > 0 {
-			method := p.BSAMethod
-			if method == "" {
-				method = "dubois"
-			}
-			if bsa, err := BSA(BSAMethod(method), in.HeightCM, in.WeightKG); err == nil {
-				r.BSA, r.BSAMethod, r.NonIndexed = bsa, method, Deindex(v, bsa)
+	}
+	if in.HeightCM > 0 && in.WeightKG > 0 && (e.Unit == UnitIndexed && p.NonIndexed || e.Unit == UnitNotIndexed && p.IndexClearance) {
+		method := p.BSAMethod
+		if method == "" {
+			method = "dubois"
+		}
+		if bsa, err := BSA(BSAMethod(method), in.HeightCM, in.WeightKG); err == nil {
+			r.BSA, r.BSAMethod = bsa, method
+			bsaStep := step("BSA ("+method+")", bsa, "height %g cm, weight %g kg", in.HeightCM, in.WeightKG)
+			if e.Unit == UnitIndexed {
+				r.NonIndexed = Deindex(v, bsa)
+				r.Steps = append(r.Steps, bsaStep, step("non-indexed (mL/min)", r.NonIndexed, "%.6g × %.6g / 1.73", v, bsa))
+				r.Comments = append(r.Comments, fmt.Sprintf("Not indexed to body surface area (BSA %.2f m², %s): %s mL/min.",
+					bsa, method, strconv.FormatFloat(roundTo(r.NonIndexed, p.Decimals), 'f', p.Decimals, 64)))
+			} else {
+				r.Indexed = Index(v, bsa)
+				r.Steps = append(r.Steps, bsaStep, step("per 1.73 m² (mL/min/1.73 m²)", r.Indexed, "%.6g × 1.73 / %.6g", v, bsa))
+				r.Comments = append(r.Comments, fmt.Sprintf("Per 1.73 m² of body surface area (BSA %.2f m², %s): %s mL/min/1.73 m².",
+					bsa, method, strconv.FormatFloat(roundTo(r.Indexed, p.Decimals), 'f', p.Decimals, 64)))
 			}
 		}
 	}

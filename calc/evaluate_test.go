@@ -2,6 +2,7 @@ package calc
 
 import (
 	"encoding/json"
+	"fmt"
 	"math"
 	"strconv"
 	"testing"
@@ -456,4 +457,36 @@ func TestEveryReasonIsListedAndDescribed(t *testing.T) {
 		require.NotEqual(t, Reason("").Describe(), r.Describe(), "no sentence for %s", r)
 	}
 	require.Len(t, seen, 16)
+}
+
+func TestBSAConversions(t *testing.T) {
+	calc := NewCalculator(Builtin())
+	p := preset(t, "nkf-asn-2021")
+	ms := []Measurement{cr("1.0", "mg/dL"), height("180"), {Analyte: Weight, ValueText: "80", Unit: "kg"}}
+	o := calc.Evaluate(Request{AgeYears: ptr(50.0), Sex: SexMale, Measurements: ms, Policy: p})
+	require.Zero(t, o.Results[0].NonIndexed, "off unless the policy asks")
+
+	p.NonIndexed, p.BSAMethod = true, "mosteller"
+	o = calc.Evaluate(Request{AgeYears: ptr(50.0), Sex: SexMale, Measurements: ms, Policy: p})
+	r := o.Results[0]
+	// Mosteller: sqrt(180 × 80 / 3600) = 2 m² exactly (hand computation
+	// from Mosteller, N Engl J Med 1987); de-indexed = eGFR × 2 / 1.73.
+	require.InDelta(t, 2.0, r.BSA, 1e-12)
+	require.InDelta(t, r.Exact*2/1.73, r.NonIndexed, 1e-9)
+	require.Equal(t, r.NonIndexed, r.Steps[len(r.Steps)-1].Value)
+	require.Contains(t, r.Comments, fmt.Sprintf("Not indexed to body surface area (BSA 2.00 m², mosteller): %.0f mL/min.", r.NonIndexed))
+
+	// Measured clearance 100 mL/min per 1.73 m²: × 1.73 / 2.
+	p.IndexClearance = true
+	timed := append(ms, Measurement{Analyte: UrineCreatinine, ValueText: "100", Unit: "mg/dL"},
+		Measurement{Analyte: UrineVolume, ValueText: "1440", Unit: "mL"},
+		Measurement{Analyte: CollectionTime, ValueText: "24", Unit: "h"})
+	o = calc.Evaluate(Request{AgeYears: ptr(50.0), Sex: SexMale, Equation: "crcl-timed-urine", Measurements: timed, Policy: p})
+	require.Len(t, o.Results, 1)
+	r = o.Results[0]
+	// U×V/(P×t) = 100 × 1440 / (1.0 × 1440) = 100 mL/min (hand computation).
+	require.InDelta(t, 100, r.Exact, 1e-9)
+	require.InDelta(t, 86.5, r.Indexed, 1e-9)
+	require.Contains(t, r.Comments, "Per 1.73 m² of body surface area (BSA 2.00 m², mosteller): 87 mL/min/1.73 m².")
+	require.Empty(t, r.Category, "clearances in mL/min get no KDIGO category")
 }

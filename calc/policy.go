@@ -71,6 +71,10 @@ type Policy struct {
 	// weight are known (for drug dosing); BSAMethod is "dubois" or "mosteller".
 	NonIndexed bool   `json:"non_indexed,omitempty"`
 	BSAMethod  string `json:"bsa_method,omitempty"`
+	// IndexClearance adds, to clearances reported in mL/min (measured
+	// timed-urine clearance, Cockcroft–Gault), the value per 1.73 m² when
+	// height and weight are known.
+	IndexClearance bool `json:"index_clearance,omitempty"`
 }
 
 // DefaultCautions are the comments attached to every eGFR by the presets.

@@ -148,6 +148,9 @@ type Result struct {
 	BSA        float64 `json:"bsa_m2,omitempty"`
 	BSAMethod  string  `json:"bsa_method,omitempty"`
 	NonIndexed float64 `json:"non_indexed_ml_min,omitempty"`
+	// Indexed is a clearance reported in mL/min expressed per 1.73 m² of
+	// body surface area (Policy.IndexClearance).
+	Indexed float64 `json:"indexed_ml_min_173,omitempty"`
 }
 
 // Refusal explains why a value was not computed.

@@ -231,6 +231,10 @@ type ReportingConfig struct {
 	NonIndexed bool `yaml:"non_indexed"`
 	// BSAMethod is "dubois" or "mosteller"; empty means the preset's.
 	BSAMethod string `yaml:"bsa_method"`
+	// IndexClearance adds, to clearances in mL/min (timed urine,
+	// Cockcroft–Gault), the value per 1.73 m² when height and weight are
+	// known.
+	IndexClearance bool `yaml:"index_clearance"`
 }
 
 // AnalyteCode maps a local result code to an analyte.

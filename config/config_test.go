@@ -361,6 +361,7 @@ func TestFullConfig(t *testing.T) {
 	require.Equal(t, calc.SexRuleBoth, p.SexUnknown)
 	require.True(t, p.RequireTraceable)
 	require.True(t, p.NonIndexed)
+	require.True(t, p.IndexClearance)
 	require.Equal(t, "mosteller", p.BSAMethod)
 	require.Equal(t, []string{"Invented caution comment one.", "Invented caution comment two."}, p.Cautions)
 	require.Equal(t, map[string]string{"ckd-epi-2021-crcys": "98980-6"}, p.LOINC)

@@ -178,6 +178,7 @@ func (c *Config) Policy() (calc.Policy, error) {
 		p.Cautions = slices.Clone(r.Comments)
 	}
 	p.NonIndexed = r.NonIndexed
+	p.IndexClearance = r.IndexClearance
 	if r.BSAMethod != "" {
 		p.BSAMethod = r.BSAMethod
 	}
