@@ -7,6 +7,7 @@ import (
 	"path/filepath"
 	"strconv"
 	"strings"
+	"sync"
 	"testing"
 	"time"
 
@@ -167,4 +168,28 @@ func TestDryrunFHIR(t *testing.T) {
 	require.ErrorAs(t, err, &ec)
 	require.Contains(t, out, "FHIR  HTTP 400")
 	require.Contains(t, out, `"resourceType": "OperationOutcome"`)
+}
+
+func TestLoad(t *testing.T) {
+	ln, err := net.Listen("tcp", "127.0.0.1:0")
+	require.NoError(t, err)
+	var mu sync.Mutex
+	ids := map[string]bool{}
+	srv := &mllp.Server{Handler: mllp.HandlerFunc(func(_ context.Context, p []byte) []byte {
+		m, err := hl7v2.Parse(p)
+		if err != nil {
+			return nil
+		}
+		mu.Lock()
+		ids[m.ControlID()] = true
+		mu.Unlock()
+		return hl7v2.BuildACK(m, "AA", "", "", "L", time.Now()).Encode()
+	})}
+	go func() { _ = srv.Serve(ln) }()
+	t.Cleanup(func() { _ = srv.Close() })
+	out, _, err := runCLI(t, "", "load", "--to", ln.Addr().String(), "--messages", "60", "--concurrency", "3")
+	require.NoError(t, err)
+	require.Contains(t, out, "sent 60 messages")
+	require.Contains(t, out, "  AA 60\n")
+	require.Len(t, ids, 60, "every message has its own control ID")
 }

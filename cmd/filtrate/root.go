@@ -37,6 +37,7 @@ is used; local regulations apply.`,
 		newDryrunCmd(version),
 		newDemoCmd(version),
 		newOutboxCmd(),
+		newLoadCmd(),
 		newAuditCmd(),
 		newStoreCmd(),
 	)
