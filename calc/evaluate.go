@@ -219,6 +219,20 @@ func (c *Calculator) Evaluate(req Request) Outcome {
 			out.Results = append(out.Results, r)
 		}
 	}
+	// When the policy's primary equation was refused (a child without
+	// height has no creatinine result but may have a cystatin C one), the
+	// first value computed is the primary one, so that a worksheet and a
+	// report show the same value.
+	hasPrimary := false
+	for _, r := range out.Results {
+		hasPrimary = hasPrimary || r.Primary
+	}
+	if !hasPrimary && len(out.Results) > 0 {
+		first := out.Results[0].Equation
+		for i := range out.Results {
+			out.Results[i].Primary = out.Results[i].Equation == first
+		}
+	}
 	return out
 }
 
@@ -344,7 +358,9 @@ func (c *Calculator) compute(p Policy, e Equation, in Inputs) (Result, error) {
 	}
 	rounded := roundTo(v, p.Decimals)
 	r.Reported = strconv.FormatFloat(rounded, 'f', p.Decimals, 64)
-	if p.CapAbove > 0 && rounded > p.CapAbove {
+	// Caps apply to eGFR (indexed) only: a clearance in mL/min above the
+	// cap (augmented clearance) matters for drug dosing.
+	if p.CapAbove > 0 && rounded > p.CapAbove && e.Unit == UnitIndexed {
 		r.Reported = ">" + strconv.FormatFloat(p.CapAbove, 'f', -1, 64)
 		r.Capped = true
 	}

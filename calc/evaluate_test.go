@@ -92,7 +92,7 @@ func TestPolicyChoosesEquations(t *testing.T) {
 		{"child without height: no eGFR from creatinine", "nkf-asn-2021", 11, SexMale, []Measurement{cr("0.9", "mg/dL")},
 			nil, "", []Reason{ReasonHeightMissing}, true},
 		{"child without height, cystatin C still computes", "nkf-asn-2021", 11, SexMale, []Measurement{cr("0.9", "mg/dL"), cys("1.3")},
-			[]string{"ckid-u25-cys"}, "", []Reason{ReasonHeightMissing, ReasonHeightMissing, ReasonHeightMissing}, false}, // ckid-u25-cr on creatinine; ckid-u25-crcys on both inputs
+			[]string{"ckid-u25-cys"}, "ckid-u25-cys", []Reason{ReasonHeightMissing, ReasonHeightMissing, ReasonHeightMissing}, false}, // ckid-u25-cr on creatinine; ckid-u25-crcys on both inputs
 		{"infant below every band", "nkf-asn-2021", 0.5, SexMale, []Measurement{cr("0.3", "mg/dL"), height("65")},
 			nil, "", []Reason{ReasonAgeBelowRange}, true},
 		{"NICE adult creatinine: CKD-EPI 2009", "nice-2021", 60, SexMale, []Measurement{cr("1.1", "mg/dL")},
@@ -489,4 +489,22 @@ func TestBSAConversions(t *testing.T) {
 	require.InDelta(t, 86.5, r.Indexed, 1e-9)
 	require.Contains(t, r.Comments, "Per 1.73 m² of body surface area (BSA 2.00 m², mosteller): 87 mL/min/1.73 m².")
 	require.Empty(t, r.Category, "clearances in mL/min get no KDIGO category")
+}
+
+// A clearance in mL/min is never capped: augmented clearance matters for
+// drug dosing.
+func TestCapAppliesToEGFROnly(t *testing.T) {
+	calc := NewCalculator(Builtin())
+	p := preset(t, "nice-2021")
+	ms := []Measurement{cr("0.5", "mg/dL"), {Analyte: UrineCreatinine, ValueText: "120", Unit: "mg/dL"},
+		{Analyte: UrineVolume, ValueText: "1500", Unit: "mL"}, {Analyte: CollectionTime, ValueText: "24", Unit: "h"}}
+	o := calc.Evaluate(Request{AgeYears: ptr(30.0), Sex: SexMale, Measurements: ms, Policy: p})
+	got := map[string]Result{}
+	for _, r := range o.Results {
+		got[r.Equation] = r
+	}
+	require.Equal(t, ">90", got["ckd-epi-2009-cr"].Reported)
+	// 120 × 1500 / (0.5 × 1440) = 250 mL/min (hand computation).
+	require.Equal(t, "250", got["crcl-timed-urine"].Reported)
+	require.False(t, got["crcl-timed-urine"].Capped)
 }

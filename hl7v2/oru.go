@@ -170,6 +170,7 @@ type ORU struct {
 	Orders []*Order
 
 	loose []*Observation // OBX segments before any OBR
+	loc   *time.Location // the laboratory's zone (ExtractOptions.Location)
 }
 
 // Patient is what a PID segment says about the patient.
@@ -266,7 +267,7 @@ func ExtractORU(m *Message, opts ExtractOptions) (*ORU, error) {
 	if loc == nil {
 		loc = time.UTC
 	}
-	o := &ORU{msg: m, ControlID: m.ControlID()}
+	o := &ORU{msg: m, ControlID: m.ControlID(), loc: loc}
 	var (
 		patient *Patient
 		order   *Order
@@ -366,10 +367,7 @@ func readObservation(s *Segment, codes *CodeMap, loc *time.Location) *Observatio
 		return obs
 	}
 	obs.Analyte = e.Analyte
-	unit := strings.TrimSpace(s.Field(6).Component(1).String())
-	if unit == "" {
-		unit = e.Unit
-	}
+	unit := obxUnit(s.Field(6), e.Unit)
 	obs.Measurement = calc.Measurement{
 		Analyte:    e.Analyte,
 		ValueText:  valueText(s.Field(5), obs.ValueType),
@@ -378,6 +376,27 @@ func readObservation(s *Segment, codes *CodeMap, loc *time.Location) *Observatio
 		Instrument: s.Field(18).Component(1).String(),
 	}
 	return obs
+}
+
+// obxUnit returns the unit of OBX-6 (CE: identifier^text^system^
+// alternate identifier^alternate text^alternate system). The identifier
+// (component 1) is the unit; when it is empty but the alternate is coded in
+// UCUM, the alternate identifier. A configured default unit applies only
+// when the whole field is empty. Anything else is passed through as sent,
+// so that calc refuses it as an unknown unit rather than a guess.
+func obxUnit(f Field, defaultUnit string) string {
+	if f.IsEmpty() {
+		return defaultUnit
+	}
+	if u := strings.TrimSpace(f.Component(1).String()); u != "" {
+		return u
+	}
+	if strings.EqualFold(f.Component(6).String(), "UCUM") {
+		if u := strings.TrimSpace(f.Component(4).String()); u != "" {
+			return u
+		}
+	}
+	return f.d.DecodeText(f.Raw())
 }
 
 // valueText renders OBX-5 as one text for calc. A structured numeric (SN,
@@ -391,15 +410,27 @@ func valueText(f Field, valueType string) string {
 	case f.Reps() > 1:
 		return d.DecodeText(f.Raw())
 	case valueType == "SN":
-		var b strings.Builder
-		for c := 1; c <= 4; c++ {
-			b.WriteString(strings.TrimSpace(f.Component(c).String()))
+		// Only a comparator and num1 make a single value; a separator or
+		// num2 (a ratio or range such as "^1^:^5") is passed as sent and
+		// refused. "=" is the explicit form of no comparator.
+		if f.Components() > 2 || subcomponents(f) {
+			return d.DecodeText(f.Raw())
 		}
-		return b.String()
-	case f.Components() > 1:
+		cmp := strings.TrimSpace(f.Component(1).String())
+		if cmp == "=" {
+			cmp = ""
+		}
+		return cmp + strings.TrimSpace(f.Component(2).String())
+	case f.Components() > 1 || subcomponents(f):
 		return d.DecodeText(f.Raw())
 	}
 	return strings.TrimSpace(f.String())
+}
+
+// subcomponents reports whether a field's first repetition holds a
+// subcomponent separator.
+func subcomponents(f Field) bool {
+	return !f.literal && strings.ContainsRune(f.Rep(1).raw, rune(f.d.Subcomponent))
 }
 
 // primary reports analytes that a calculation is made from (as opposed to
@@ -423,7 +454,10 @@ func (o *ORU) NeedsCalculation(i int) bool {
 // Measurements returns the inputs of order i (0-based) for calc: its mapped
 // observations with a usable status (ClassifyStatus gives StatusCompute).
 // Height and weight reported elsewhere in the message for the same patient
-// are added when the order has none of its own.
+// are added when the order has none of its own, and only when they were
+// observed within a day of this order's specimen (OBX-14, else their own
+// order's collection time): a child's height from another visit must not
+// feed a height-based equation.
 func (o *ORU) Measurements(i int) []calc.Measurement {
 	ord := o.Orders[i]
 	var out []calc.Measurement
@@ -439,12 +473,32 @@ func (o *ORU) Measurements(i int) []calc.Measurement {
 			continue
 		}
 		for _, obs := range o.all() {
-			if obs.Analyte == a && obs.patient == ord.Patient && ClassifyStatus(obs.Status) == StatusCompute {
+			if obs.Analyte == a && obs.patient == ord.Patient && ClassifyStatus(obs.Status) == StatusCompute && o.sameDay(obs, ord) {
 				out = append(out, obs.Measurement)
 			}
 		}
 	}
 	return out
+}
+
+// sameDay reports whether obs was observed within 24 hours of ord's
+// specimen collection; unknown times do not qualify.
+func (o *ORU) sameDay(obs *Observation, ord *Order) bool {
+	at := obs.ObservedAt
+	if at.Precision < PrecisionDay {
+		for _, other := range o.Orders {
+			for _, x := range other.Observations {
+				if x == obs {
+					at = other.CollectedAt
+				}
+			}
+		}
+	}
+	if at.Precision < PrecisionDay || ord.CollectedAt.Precision < PrecisionDay {
+		return false
+	}
+	d := at.Time.Sub(ord.CollectedAt.Time)
+	return d <= 24*time.Hour && d >= -24*time.Hour
 }
 
 // all returns every observation of the message in order.
@@ -465,7 +519,9 @@ func (o *ORU) Request(i int) calc.Request {
 	ord := o.Orders[i]
 	req := calc.Request{Measurements: o.Measurements(i)}
 	if ord.CollectedAt.Precision >= PrecisionDay {
-		req.CollectedAt = ord.CollectedAt.Time
+		// Age counts calendar days in the laboratory's zone, whatever
+		// offset the sender wrote.
+		req.CollectedAt = ord.CollectedAt.Time.In(o.loc)
 	}
 	if p := ord.Patient; p != nil {
 		req.Sex = p.Sex

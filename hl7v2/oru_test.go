@@ -71,7 +71,8 @@ func TestExtractORU(t *testing.T) {
 	req := o.Request(0)
 	require.Equal(t, calc.SexMale, req.Sex)
 	require.Equal(t, p.BirthDate.Time, req.BirthDate)
-	require.Equal(t, ord.CollectedAt.Time, req.CollectedAt)
+	require.True(t, ord.CollectedAt.Time.Equal(req.CollectedAt), "same instant")
+	require.Equal(t, time.UTC, req.CollectedAt.Location(), "in the laboratory's zone (UTC by default)")
 	var ids []string
 	for _, m := range req.Measurements {
 		ids = append(ids, string(m.Analyte)+"@"+m.SourceID+"="+m.ValueText+" "+m.Unit)
@@ -96,7 +97,10 @@ func TestExtractValues(t *testing.T) {
 		{"SN censored below", `OBX|1|SN|2160-0^Creat^LN||<^0.2|mg/dL|||||F`, "<0.2"},
 		{"SN censored above", `OBX|1|SN|2160-0^Creat^LN||>=^20|mg/dL|||||F`, ">=20"},
 		{"SN plain", `OBX|1|SN|2160-0^Creat^LN||^0.92|mg/dL|||||F`, "0.92"},
-		{"SN ratio", `OBX|1|SN|2160-0^Creat^LN||^1^:^2|mg/dL|||||F`, "1:2"},
+		{"SN ratio: passed as sent, refused by calc", `OBX|1|SN|2160-0^Creat^LN||^1^:^2|mg/dL|||||F`, "^1^:^2"},
+		{"SN num2 without separator is not 15", `OBX|1|SN|2160-0^Creat^LN||^1^^5|mg/dL|||||F`, "^1^^5"},
+		{"SN explicit equals", `OBX|1|SN|2160-0^Creat^LN||=^1.0|mg/dL|||||F`, "1.0"},
+		{"NM with a subcomponent is not 1.2", `OBX|1|NM|2160-0^Creat^LN||1.2&x|mg/dL|||||F`, "1.2&x"},
 		{"NM with spaces", `OBX|1|NM|2160-0^Creat^LN|| 0.92 |mg/dL|||||F`, "0.92"},
 		{"ST censored", `OBX|1|ST|2160-0^Creat^LN||<0.2|mg/dL|||||F`, "<0.2"},
 		{"NM repeated", `OBX|1|NM|2160-0^Creat^LN||0.9~1.0|mg/dL|||||F`, "0.9~1.0"},
@@ -249,4 +253,59 @@ func TestStatusesChooseMeasurements(t *testing.T) {
 	ms := o.Measurements(0)
 	require.Len(t, ms, 1)
 	require.Equal(t, calc.CystatinC, ms[0].Analyte)
+}
+
+func TestOBXUnit(t *testing.T) {
+	msh := `MSH|^~\&|NVLAB|NVL|EHR|NVH|20250314093000||ORU^R01|U1|P|2.5.1`
+	codes, err := NewCodeMap(append(DefaultCodeEntries(), CodeEntry{System: "L", Code: "CREA", Analyte: calc.Creatinine, Unit: "umol/L"})...)
+	require.NoError(t, err)
+	tests := []struct {
+		name, obx, want string
+	}{
+		{"identifier", `OBX|1|NM|CREA^Creatinine^L||80|umol/L|||||F`, "umol/L"},
+		{"identifier with text and system", `OBX|1|NM|CREA^Creatinine^L||0.9|mg/dL^milligram per deciliter^UCUM|||||F`, "mg/dL"},
+		// HL7 v2.5.1 CE: the alternate identifier, when coded in UCUM.
+		{"alternate UCUM identifier", `OBX|1|NM|CREA^Creatinine^L||0.9|^^^mg/dL^^UCUM|||||F`, "mg/dL"},
+		// The configured unit applies only when OBX-6 is empty: a unit sent
+		// in another component is not replaced by it (12 mg/dL must not
+		// become 12 umol/L).
+		{"text only: passed as sent", `OBX|1|NM|CREA^Creatinine^L||12|^mg/dL^mg/dL^UCUM|||||F`, "^mg/dL^mg/dL^UCUM"},
+		{"empty: configured default", `OBX|1|NM|CREA^Creatinine^L||80||||||F`, "umol/L"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			m, err := Parse([]byte(seg(msh, `PID|1||P1`, `OBR|1`, tt.obx)))
+			require.NoError(t, err)
+			o, err := ExtractORU(m, ExtractOptions{Codes: codes})
+			require.NoError(t, err)
+			require.Equal(t, tt.want, o.Orders[0].Observations[0].Measurement.Unit)
+		})
+	}
+}
+
+// Height from another order is used only when observed within a day of the
+// specimen.
+func TestBorrowedHeightMustBeRecent(t *testing.T) {
+	msg := func(heightTime string) string {
+		return seg(`MSH|^~\&|NVLAB|NVL|EHR|NVH|20250314093000||ORU^R01|H1|P|2.5.1`,
+			`PID|1||P1||||20150101|M`,
+			`OBR|1|||RENAL|||20250314080000`,
+			`OBX|1|NM|2160-0^Creat^LN||0.6|mg/dL|||||F|||20250314080000`,
+			`OBR|2|||VITALS|||`+heightTime,
+			`OBX|1|NM|8302-2^Height^LN||140|cm|||||F|||`+heightTime)
+	}
+	for _, tc := range []struct {
+		at   string
+		want bool
+	}{{"20250314070000", true}, {"20250313090000", true}, {"20230102090000", false}, {"", false}} {
+		m, err := Parse([]byte(msg(tc.at)))
+		require.NoError(t, err)
+		o, err := ExtractORU(m, ExtractOptions{})
+		require.NoError(t, err)
+		has := false
+		for _, me := range o.Request(0).Measurements {
+			has = has || me.Analyte == calc.Height
+		}
+		require.Equal(t, tc.want, has, "height observed %q", tc.at)
+	}
 }

@@ -2,6 +2,8 @@ package ingest
 
 import (
 	"context"
+	"crypto/sha256"
+	"encoding/hex"
 	"errors"
 	"fmt"
 	"log/slog"
@@ -94,6 +96,11 @@ func (h *HL7) Handle(ctx context.Context, payload []byte) (p Processed) {
 		return h.refuse(msg, hl7v2.AckReject, hl7v2.ErrorDetail{Code: hl7v2.ErrCodeApplication, Text: "observation result could not be read"}, err)
 	}
 	pm, index := neutral(oru, payload)
+	// A sender that reuses a control ID (a counter reset) for a different
+	// report must not have it dropped as a duplicate: the key also covers
+	// the message body (every segment after MSH, so a resend with a new
+	// MSH-7 time is still recognised as the same message).
+	pm.DedupKey += "|" + bodyHash(msg)
 	evals := h.Proc.Evaluate(pm, st.Snapshot)
 	outcomes := make([]*calc.Outcome, len(oru.Orders))
 	for i, e := range evals {
@@ -193,4 +200,14 @@ func patientFields(oru *hl7v2.ORU, p *hl7v2.Patient) (id, birth, sex string) {
 		k++
 	}
 	return id, birth, p.SexCode
+}
+
+// bodyHash is the hex SHA-256 of a message's segments after MSH.
+func bodyHash(msg *hl7v2.Message) string {
+	h := sha256.New()
+	for i := 1; i < msg.Len(); i++ {
+		h.Write([]byte(msg.Segment(i).String()))
+		h.Write([]byte{'\r'})
+	}
+	return hex.EncodeToString(h.Sum(nil))
 }

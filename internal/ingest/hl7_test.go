@@ -239,3 +239,37 @@ func BenchmarkHandleORU(b *testing.B) {
 		}
 	}
 }
+
+// A control ID reused for a different report (a sender's counter reset) is
+// processed, not dropped as a duplicate; a resend that differs only in MSH-7
+// is still a duplicate.
+func TestReusedControlIDIsNotADuplicate(t *testing.T) {
+	hs := newHarness(t, config.Default())
+	require.Equal(t, hl7v2.AckAccept, handle(t, hs, adult).Code)
+	resend := handle(t, hs, strings.Replace(adult, "|20261130081500|", "|20261130091500|", 1))
+	require.True(t, resend.Duplicate, "same body, new message time: the same message")
+	other := handle(t, hs, strings.Replace(strings.Replace(adult, "P1^^^LAB", "P2^^^LAB", 1), "|0.92|", "|1.40|", 1))
+	require.Equal(t, hl7v2.AckAccept, other.Code)
+	require.False(t, other.Duplicate, "a different report under a reused control ID is processed")
+	recs, err := hs.store.Search(context.Background(), store.Filter{MessageID: "C1"})
+	require.NoError(t, err)
+	require.Len(t, recs, 2)
+}
+
+// Age counts calendar days in the laboratory's zone: 01:00 UTC on
+// 16 March 2024 is still 15 March in New York, the day before this
+// patient's 18th birthday, so the adult equation must not be used.
+func TestAgeUsesTheLaboratoryTimeZone(t *testing.T) {
+	cfg, err := config.Load([]byte("timezone: America/New_York\n"), "tz.yml")
+	require.NoError(t, err)
+	hs := newHarness(t, cfg)
+	msg := strings.NewReplacer("19720314|F", "20060316|M", "|||20261130071000\nOBX", "|||20240316010000+0000\nOBX").Replace(adult)
+	p := handle(t, hs, msg)
+	require.Equal(t, hl7v2.AckAccept, p.Code)
+	require.Len(t, p.Evaluated, 1)
+	o := p.Evaluated[0].Outcome
+	require.NotNil(t, o.AgeYears)
+	require.Less(t, *o.AgeYears, 18.0)
+	require.Empty(t, o.Results, "CKiD U25 needs height; no adult equation at 17")
+	require.Equal(t, calc.ReasonHeightMissing, o.Refusals[0].Code)
+}
