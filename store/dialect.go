@@ -31,13 +31,16 @@ type dialect struct {
 const sqliteTimeLayout = "2006-01-02T15:04:05.000000Z"
 
 // claimDue is the condition shared by both claim queries: pending, due, not
-// under a live lease, and the oldest pending item of its partition.
+// under a live lease, and the oldest unsent item of its partition. A parked
+// item holds up its partition until a person requeues or discards it: if
+// later reports (a correction) went out first, requeueing the original
+// would put it after its correction.
 const claimDue = `o.destination = ? AND o.state = 'pending' AND o.next_attempt_at <= ?
 	AND (o.lease_until IS NULL OR o.lease_until <= ?)
 	AND (o.partition_key = '' OR NOT EXISTS (
 		SELECT 1 FROM outbox_items p
 		WHERE p.destination = o.destination AND p.partition_key = o.partition_key
-		AND p.state = 'pending' AND p.id < o.id))`
+		AND p.state IN ('pending', 'parked') AND p.id < o.id))`
 
 var sqliteDialect = &dialect{
 	name:     "sqlite",

@@ -136,6 +136,19 @@ func (s *sqlStore) Requeue(ctx context.Context, id int64) error {
 WHERE id = ? AND state = 'parked'`, s.d.t(s.now()), id)
 }
 
+// Discard implements Store.
+func (s *sqlStore) Discard(ctx context.Context, id int64, reason string) error {
+	if err := checkText("reason", reason); err != nil {
+		return fmt.Errorf("%w: %s", ErrInvalid, err)
+	}
+	if reason == "" {
+		return fmt.Errorf("%w: a reason is required to discard an outbox item", ErrInvalid)
+	}
+	return s.transition(ctx, "discard", id,
+		`UPDATE outbox_items SET state = 'sent', sent_at = ?, ack_info = ?, lease_until = NULL
+WHERE id = ? AND state = 'parked'`, s.d.t(s.now()), DiscardedPrefix+reason, id)
+}
+
 // ListParked implements Store.
 func (s *sqlStore) ListParked(ctx context.Context) ([]OutboxItem, error) {
 	if s.closed.Load() {

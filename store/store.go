@@ -51,6 +51,9 @@ var (
 	ErrMigrationsPending = errors.New("store: schema migrations pending")
 )
 
+// DiscardedPrefix starts the AckInfo of an item a person discarded.
+const DiscardedPrefix = "discarded by a person: "
+
 // GenesisHash is the PrevHash of the first audit record: 64 zeros.
 const GenesisHash = "0000000000000000000000000000000000000000000000000000000000000000"
 
@@ -87,8 +90,8 @@ type Store interface {
 	// lease duration and returns them in ID order. An item is due when it is
 	// pending, its next attempt time has come and no live lease holds it.
 	// Items sharing a PartitionKey go out one at a time, oldest first: an item
-	// is not claimable while an older pending item of the same destination
-	// and partition exists. Each claim counts as an attempt. When a lease
+	// is not claimable while an older pending or parked item of the same
+	// destination and partition exists. Each claim counts as an attempt. When a lease
 	// runs out without MarkSent, Retry or Park, the item becomes claimable
 	// again. Concurrent Claims (also from other processes) never return the
 	// same item while its lease is live.
@@ -101,9 +104,15 @@ type Store interface {
 	// reason must not contain patient data.
 	Retry(ctx context.Context, id int64, next time.Time, reason string) error
 	// Park takes a pending item out of delivery for a person to look at.
-	// Later items of its partition may then proceed. reason must not
-	// contain patient data.
+	// Later items of its partition wait until the person requeues or
+	// discards it, so that delivery order is kept. reason must not contain
+	// patient data.
 	Park(ctx context.Context, id int64, reason string) error
+	// Discard closes a parked item without sending it, when a person has
+	// decided it must not be sent; it is kept, marked sent with AckInfo
+	// DiscardedPrefix + reason, and its partition proceeds. reason is
+	// required and must not contain patient data.
+	Discard(ctx context.Context, id int64, reason string) error
 	// ListParked returns all parked items in ID order.
 	ListParked(ctx context.Context) ([]OutboxItem, error)
 	// Requeue returns a parked item to delivery, due now.

@@ -109,8 +109,8 @@ func (w *Worker) defaults() {
 	if w.SendTimeout <= 0 {
 		w.SendTimeout = 30 * time.Second
 	}
-	if w.Lease <= w.SendTimeout {
-		w.Lease = 2*w.SendTimeout + 10*time.Second
+	if w.Lease < 2*(w.SendTimeout+bookkeepingTimeout) {
+		w.Lease = 2*(w.SendTimeout+bookkeepingTimeout) + 10*time.Second
 	}
 	if w.Batch <= 0 {
 		w.Batch = 16
@@ -181,6 +181,13 @@ func (w *Worker) RunOnce(ctx context.Context) (int, error) {
 		return 0, fmt.Errorf("forward: claim %s: %w", w.Destination, err)
 	}
 	for i, it := range items {
+		// Never start a delivery whose claim could run out before the
+		// delivery and its bookkeeping end: another daemon could claim
+		// and send the item meanwhile, and out of order.
+		if !it.LeaseUntil.IsZero() && it.LeaseUntil.Sub(w.Now()) < w.SendTimeout+bookkeepingTimeout {
+			w.release(ctx, items[i:])
+			return i, nil
+		}
 		if ctx.Err() != nil {
 			// Shutting down: hand the remaining claims back at once so
 			// that another daemon (or this one after a restart) need not
@@ -203,11 +210,18 @@ func (w *Worker) release(ctx context.Context, items []store.OutboxItem) {
 	}
 }
 
+// bookkeepingTimeout bounds recording a delivery's outcome in the store;
+// it has its own context, so a send that used up its time still gets its
+// outcome recorded.
+const bookkeepingTimeout = 10 * time.Second
+
 func (w *Worker) deliver(ctx context.Context, it store.OutboxItem) {
 	// Finish this attempt even if ctx ends now; record its outcome.
 	sctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), w.SendTimeout)
-	defer cancel()
 	ack, err := w.Sender.Send(sctx, it)
+	cancel()
+	sctx, cancel = context.WithTimeout(context.WithoutCancel(ctx), bookkeepingTimeout)
+	defer cancel()
 	var rej *RejectedError
 	switch {
 	case err == nil:

@@ -43,21 +43,30 @@ func (f *fakeOutbox) Claim(_ context.Context, dest, _ string, limit int, _ time.
 	return out, nil
 }
 
-func (f *fakeOutbox) MarkSent(_ context.Context, id int64, ack string) error {
+func (f *fakeOutbox) MarkSent(ctx context.Context, id int64, ack string) error {
+	if err := ctx.Err(); err != nil {
+		return err // like the store: a dead context records nothing
+	}
 	f.mu.Lock()
 	defer f.mu.Unlock()
 	f.sent[id] = ack
 	return nil
 }
 
-func (f *fakeOutbox) Retry(_ context.Context, id int64, next time.Time, _ string) error {
+func (f *fakeOutbox) Retry(ctx context.Context, id int64, next time.Time, _ string) error {
+	if err := ctx.Err(); err != nil {
+		return err // like the store: a dead context records nothing
+	}
 	f.mu.Lock()
 	defer f.mu.Unlock()
 	f.retries[id] = next
 	return nil
 }
 
-func (f *fakeOutbox) Park(_ context.Context, id int64, reason string) error {
+func (f *fakeOutbox) Park(ctx context.Context, id int64, reason string) error {
+	if err := ctx.Err(); err != nil {
+		return err // like the store: a dead context records nothing
+	}
 	f.mu.Lock()
 	defer f.mu.Unlock()
 	f.parked[id] = reason
@@ -171,4 +180,39 @@ func TestShutdownReleasesUndeliveredClaims(t *testing.T) {
 	require.Equal(t, 1, n)
 	require.Equal(t, map[int64]string{1: "AA"}, box.sent)
 	require.Equal(t, map[int64]time.Time{2: now, 3: now}, box.retries, "released, due now")
+}
+
+// A send that uses up its whole time still gets its retry recorded: the
+// bookkeeping has a context of its own.
+func TestOutcomeRecordedAfterSendTimeout(t *testing.T) {
+	box := newFakeOutbox(item(4, 0))
+	w := &Worker{Destination: "hl7v2", Name: "w1", Outbox: box, SendTimeout: 20 * time.Millisecond,
+		Sender: SenderFunc(func(sctx context.Context, _ store.OutboxItem) (string, error) {
+			<-sctx.Done()
+			return "", sctx.Err()
+		})}
+	_, err := w.RunOnce(context.Background())
+	require.NoError(t, err)
+	require.Contains(t, box.retries, int64(4))
+}
+
+// An item whose claim would run out during the delivery is not sent but
+// handed back.
+func TestNoDeliveryOnAnExpiringLease(t *testing.T) {
+	now := time.Date(2026, 12, 1, 8, 0, 0, 0, time.UTC)
+	fresh, stale := item(1, 0), item(2, 0)
+	fresh.LeaseUntil = now.Add(10 * time.Minute)
+	stale.LeaseUntil = now.Add(5 * time.Second)
+	box := newFakeOutbox(fresh, stale)
+	var sent []int64
+	w := &Worker{Destination: "hl7v2", Name: "w1", Outbox: box, SendTimeout: 30 * time.Second, Now: func() time.Time { return now },
+		Sender: SenderFunc(func(_ context.Context, it store.OutboxItem) (string, error) {
+			sent = append(sent, it.ID)
+			return "AA", nil
+		})}
+	n, err := w.RunOnce(context.Background())
+	require.NoError(t, err)
+	require.Equal(t, 1, n)
+	require.Equal(t, []int64{1}, sent)
+	require.Equal(t, map[int64]time.Time{2: now}, box.retries, "handed back, due now")
 }

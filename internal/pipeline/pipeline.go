@@ -16,7 +16,9 @@ import (
 	"encoding/hex"
 	"encoding/json"
 	"fmt"
+	"strings"
 	"time"
+	"unicode/utf8"
 
 	"filtrate/calc"
 	"filtrate/internal/telemetry"
@@ -139,10 +141,10 @@ func (p *Processor) Commit(ctx context.Context, msg Message, evals []Evaluated, 
 	if err != nil {
 		return store.Receipt{}, err
 	}
-	sub := store.Submission{DedupKey: msg.DedupKey, Records: recs, History: History(msg, evals)}
+	sub := store.Submission{DedupKey: key(msg.DedupKey), Records: recs, History: History(msg, evals)}
 	for _, o := range outs {
 		sub.Outbox = append(sub.Outbox, store.OutboxMessage{
-			Destination: o.Destination, PartitionKey: o.PartitionKey, MessageID: o.MessageID,
+			Destination: o.Destination, PartitionKey: key(o.PartitionKey), MessageID: clean(o.MessageID),
 			ContentType: o.ContentType, Payload: o.Payload,
 		})
 	}
@@ -196,12 +198,12 @@ func Records(msg Message, evals []Evaluated, snap *Snapshot, version, outputMess
 		}
 		pid, birth, sex := e.Group.patient(msg)
 		base := store.AuditRecord{
-			Transport: msg.Transport, MessageID: msg.MessageID, RawHash: rawHash,
-			PatientID: pid, BirthDate: birth, Sex: sex,
+			Transport: msg.Transport, MessageID: clean(msg.MessageID), RawHash: rawHash,
+			PatientID: clean(pid), BirthDate: clean(birth), Sex: clean(sex),
 			CollectedAt: e.Request.CollectedAt, Inputs: inputs,
 			Policy: e.Outcome.Policy, PolicyVersion: e.Outcome.PolicyVersion,
 			ConfigHash: snap.ConfigHash, SoftwareVersion: version,
-			OutputMessageID: outputMessageID, Request: reqJSON,
+			OutputMessageID: clean(outputMessageID), Request: reqJSON,
 		}
 		for _, r := range e.Outcome.Results {
 			steps, err := json.Marshal(r.Steps)
@@ -250,10 +252,31 @@ func History(msg Message, evals []Evaluated) []store.HistoryPoint {
 				continue
 			}
 			pts = append(pts, store.HistoryPoint{
-				PatientID: pid, Analyte: string(in.Analyte), Value: in.Used,
-				Unit: in.UsedUnit, CollectedAt: e.Request.CollectedAt, MessageID: msg.MessageID,
+				PatientID: clean(pid), Analyte: string(in.Analyte), Value: in.Used,
+				Unit: in.UsedUnit, CollectedAt: e.Request.CollectedAt, MessageID: clean(msg.MessageID),
 			})
 		}
 	}
 	return pts
+}
+
+// clean makes text received from a sender storable: invalid UTF-8 (a
+// Latin-1 sender, say) becomes U+FFFD and NUL bytes are dropped. A message
+// must never be refused for ever because of its character set; the raw hash
+// keeps the exact bytes received.
+func clean(s string) string {
+	if utf8.ValidString(s) && !strings.ContainsRune(s, 0) {
+		return s
+	}
+	return strings.ToValidUTF8(strings.ReplaceAll(s, "\x00", ""), "\uFFFD")
+}
+
+// key makes an identifying key storable without merging different keys: a
+// key that clean would change is replaced by its hash.
+func key(s string) string {
+	if clean(s) == s {
+		return s
+	}
+	h := sha256.Sum256([]byte(s))
+	return "sha256:" + hex.EncodeToString(h[:])
 }

@@ -4,6 +4,7 @@ import (
 	"context"
 	"encoding/json"
 	"path/filepath"
+	"strings"
 	"testing"
 	"time"
 
@@ -130,4 +131,31 @@ func TestMessageWithoutKidneyResultsStillCommits(t *testing.T) {
 	dup, err := p.Commit(ctx, msg, nil, snap, []Output{{Destination: "hl7v2", MessageID: "M2", Payload: []byte("x")}})
 	require.NoError(t, err)
 	require.True(t, dup.Duplicate)
+}
+
+// A sender writing Latin-1 (or NUL bytes) must not be refused for ever: the
+// text is stored as valid UTF-8, and keys that would change are hashed so
+// that different keys never merge.
+func TestTextFromOtherCharacterSetsIsStorable(t *testing.T) {
+	ctx := context.Background()
+	s := openStore(t)
+	p := NewProcessor(calc.NewCalculator(calc.Builtin()), s, "v", nil)
+	snap := snapshot(t)
+	msg := message()
+	msg.DedupKey = "hl7v2|H\xf4pital|LAB|M1"
+	msg.PatientID = "P\xe91\x00"
+	msg.MessageID = "M\xe91"
+	rcpt, err := p.Commit(ctx, msg, p.Evaluate(msg, snap), snap, []Output{{Destination: "hl7v2", PartitionKey: msg.PatientID, MessageID: msg.MessageID, Payload: []byte("x")}})
+	require.NoError(t, err)
+	rec, err := s.Record(ctx, rcpt.RecordIDs[0])
+	require.NoError(t, err)
+	require.Equal(t, "P\uFFFD1", rec.PatientID)
+	require.Equal(t, "M\uFFFD1", rec.MessageID)
+	require.True(t, strings.HasPrefix(rec.DedupKey, "sha256:"))
+
+	other := msg
+	other.DedupKey = "hl7v2|H\xf5pital|LAB|M1" // cleans to the same text
+	rc2, err := p.Commit(ctx, other, p.Evaluate(other, snap), snap, nil)
+	require.NoError(t, err)
+	require.False(t, rc2.Duplicate, "different keys stay different")
 }

@@ -729,10 +729,19 @@ func (s suite) partitionOrder(t *testing.T) {
 	require.NoError(t, st.Retry(ctx, id["A2"], clk.Now().Add(time.Hour), "later"))
 	require.Empty(t, claimIDs(t, st, 10), "A3 waits behind A2's retry")
 
-	// A parked item no longer holds up its partition.
+	// A parked item holds up its partition (a requeued original must not
+	// follow its correction) until a person requeues or discards it.
 	require.NoError(t, st.Park(ctx, id["B1"], "rejected"))
 	rc, err := st.Accept(ctx, outboxOnly("B2", "lis", "B"))
 	require.NoError(t, err)
+	require.Empty(t, claimIDs(t, st, 10), "B2 waits behind the parked B1")
+	require.ErrorIs(t, st.Discard(ctx, id["B1"], ""), store.ErrInvalid, "a reason is required")
+	require.ErrorIs(t, st.Discard(ctx, id["A2"], "x"), store.ErrWrongState, "only parked items are discarded")
+	require.NoError(t, st.Discard(ctx, id["B1"], "duplicate of an order cancelled by the ward"))
+	it, err := st.Item(ctx, id["B1"])
+	require.NoError(t, err)
+	require.Equal(t, store.OutboxSent, it.State)
+	require.Equal(t, store.DiscardedPrefix+"duplicate of an order cancelled by the ward", it.AckInfo)
 	require.Equal(t, rc.OutboxIDs, claimIDs(t, st, 10))
 
 	clk.Advance(time.Hour)
