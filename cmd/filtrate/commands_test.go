@@ -137,6 +137,23 @@ func TestOutboxParkedAndRequeue(t *testing.T) {
 	require.Contains(t, out, "0 parked")
 	_, _, err = runCLI(t, "", "outbox", "requeue", "999", "--config", cfgPath)
 	require.Error(t, err)
+
+	// Parked again, then discarded by a person.
+	s, err = store.Open(context.Background(), "file:"+filepath.Join(dir, "o.db"))
+	require.NoError(t, err)
+	items, err = s.Claim(context.Background(), "hl7v2", "t", 1, time.Minute)
+	require.NoError(t, err)
+	require.Len(t, items, 1)
+	require.NoError(t, s.Park(context.Background(), items[0].ID, "AR error code 207"))
+	require.NoError(t, s.Close())
+	_, _, err = runCLI(t, "", "outbox", "discard", strconv.FormatInt(items[0].ID, 10), "--config", cfgPath)
+	require.ErrorContains(t, err, "--reason")
+	out, _, err = runCLI(t, "", "outbox", "discard", strconv.FormatInt(items[0].ID, 10), "--reason", "resent by hand", "--config", cfgPath)
+	require.NoError(t, err)
+	require.Contains(t, out, "discarded")
+	out, _, err = runCLI(t, "", "outbox", "parked", "--config", cfgPath)
+	require.NoError(t, err)
+	require.Contains(t, out, "0 parked")
 }
 
 // The demo's kept store goes through the auditor's commands: checkpoint,

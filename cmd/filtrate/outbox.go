@@ -31,9 +31,11 @@ func newOutboxCmd() *cobra.Command {
 		Use:   "outbox",
 		Short: "Inspect the delivery queue and re-send parked messages",
 		Long: `Messages the downstream system rejected for good (HL7 v2 AR, FHIR 4xx) are parked
-for a person. "outbox status" shows the queue per destination, "outbox parked"
-lists parked messages with the reason, and "outbox requeue ID" sends one again
-once the cause is fixed downstream.`,
+for a person; the same patient's later reports wait behind them, so that a
+correction never overtakes its original. "outbox status" shows the queue per
+destination, "outbox parked" lists parked messages with the reason, "outbox
+requeue ID" sends one again once the cause is fixed downstream, and "outbox
+discard ID --reason TEXT" closes one that must not be sent.`,
 	}
 	cmd.PersistentFlags().StringVar(&cfgPath, "config", "", "configuration file (YAML) naming the store; default: built-in")
 	cmd.AddCommand(&cobra.Command{
@@ -93,5 +95,33 @@ once the cause is fixed downstream.`,
 			})
 		},
 	})
+	var reason string
+	discard := &cobra.Command{
+		Use:   "discard ID --reason TEXT",
+		Short: "Close a parked message without sending it",
+		Long: `Close a parked message that must not be sent (the laboratory decided so and
+recorded why), so that the same patient's later reports, which wait behind it to
+keep their order, go out. The item is kept with the reason; audit records are
+not touched.`,
+		Args: cobra.ExactArgs(1),
+		RunE: func(cmd *cobra.Command, args []string) error {
+			id, err := strconv.ParseInt(args[0], 10, 64)
+			if err != nil {
+				return fmt.Errorf("outbox discard: ID must be a number")
+			}
+			if reason == "" {
+				return fmt.Errorf("outbox discard: --reason is required")
+			}
+			return withStore(cmd, cfgPath, func(s store.Store) error {
+				if err := s.Discard(cmd.Context(), id, reason); err != nil {
+					return fmt.Errorf("outbox discard %d: %w", id, err)
+				}
+				fmt.Fprintf(cmd.OutOrStdout(), "outbox item %d discarded; later reports of its patient proceed\n", id)
+				return nil
+			})
+		},
+	}
+	discard.Flags().StringVar(&reason, "reason", "", "why the message is not sent (kept with the item; no patient data)")
+	cmd.AddCommand(discard)
 	return cmd
 }

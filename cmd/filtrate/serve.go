@@ -60,6 +60,6 @@ SIGTERM and SIGINT stop accepting, drain in-flight messages and exit.`,
 	}
 	cmd.Flags().StringVar(&opts.config, "config", "", "configuration file (YAML); default: built-in")
 	cmd.Flags().StringVar(&opts.logLevel, "log-level", "info", "log level: debug, info, warn, error")
-	cmd.Flags().DurationVar(&opts.shutdown, "shutdown-timeout", 30*time.Second, "deadline for a graceful stop: drain in-flight messages, finish deliveries, close the store")
+	cmd.Flags().DurationVar(&opts.shutdown, "shutdown-timeout", 40*time.Second, "deadline for a graceful stop: drain in-flight messages, finish deliveries, close the store")
 	return cmd
 }

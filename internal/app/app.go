@@ -44,7 +44,9 @@ type Options struct {
 	Registry *prometheus.Registry
 	// WorkerName identifies this daemon in outbox claims; default host:pid.
 	WorkerName string
-	// ShutdownTimeout bounds the graceful shutdown; default 30 s.
+	// ShutdownTimeout bounds the graceful shutdown; default 40 s (longer
+	// than a default delivery attempt, shorter than the systemd unit's
+	// stop timeout).
 	ShutdownTimeout time.Duration
 	// ForwardPoll is how often the outbox workers look for due items when
 	// not woken; default 1 s (tests shorten it).
@@ -100,7 +102,7 @@ func New(ctx context.Context, opts Options) (a *App, err error) {
 		opts.Version = "dev"
 	}
 	if opts.ShutdownTimeout <= 0 {
-		opts.ShutdownTimeout = 30 * time.Second
+		opts.ShutdownTimeout = 40 * time.Second
 	}
 	if opts.WorkerName == "" {
 		host, _ := os.Hostname()

@@ -260,8 +260,9 @@ func TestForwardingSurvivesDownstreamOutageAndRestart(t *testing.T) {
 	}
 }
 
-// A message the downstream system rejects (AR) is parked for a person;
-// later messages still flow.
+// A message the downstream system rejects (AR) is parked for a person.
+// The same patient's later reports wait behind it (so that a correction
+// is never overtaken by its original); other patients' reports flow.
 func TestRejectedMessageIsParked(t *testing.T) {
 	ds := newDownstream(t, reserve(t))
 	ds.setAnswer("AR")
@@ -275,8 +276,18 @@ func TestRejectedMessageIsParked(t *testing.T) {
 
 	ds.setAnswer("AA")
 	require.Equal(t, "AA", send(t, r.app.HL7Addr(), oru("K2", "P1", "1.0")).Code)
+	require.Equal(t, "AA", send(t, r.app.HL7Addr(), oru("K3", "P2", "1.0")).Code)
 	ds.wait(t, 1)
-	require.Contains(t, string(ds.messages()[0]), "|K2|")
+	require.Contains(t, string(ds.messages()[0]), "|K3|", "another patient is not held up")
+
+	// A person decides K1 must not be sent: P1's K2 follows.
+	parked, err := r.app.Store().ListParked(context.Background())
+	require.NoError(t, err)
+	require.NoError(t, r.app.Store().Discard(context.Background(), parked[0].ID, "sent by hand after checking"))
+	ds.wait(t, 1)
+	msgs := ds.messages()
+	require.Len(t, msgs, 2)
+	require.Contains(t, string(msgs[1]), "|K2|")
 }
 
 func TestShutdownIsIdempotent(t *testing.T) {

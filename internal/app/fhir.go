@@ -54,7 +54,7 @@ func (a *App) setupFHIR(cfg *config.Config) error {
 			Destination: ingest.DestinationFHIR,
 			Name:        a.opts.WorkerName,
 			Outbox:      a.store,
-			Sender:      &ingest.FHIRSender{Base: cfg.FHIR.Forward, Token: cfg.FHIR.ForwardToken(), Client: &http.Client{}},
+			Sender:      &ingest.FHIRSender{Base: cfg.FHIR.Forward, Token: cfg.FHIR.ForwardToken(), Client: noRedirects()},
 			Backoff:     forward.Backoff{Initial: cfg.FHIR.Retry.Initial, Max: cfg.FHIR.Retry.Max},
 			Poll:        a.opts.ForwardPoll,
 			SendTimeout: fhirSendTimeout,
@@ -82,4 +82,12 @@ func codeEntries(cfg *config.Config) []hl7v2.CodeEntry {
 		entries = append(entries, hl7v2.CodeEntry{System: c.System, Code: c.Code, Analyte: c.Analyte, Unit: c.Unit})
 	}
 	return entries
+}
+
+// noRedirects returns an HTTP client that does not follow redirects: Go's
+// client turns a redirected POST into a body-less GET, whose 2xx (a login
+// page behind a proxy, say) would count as delivery. A 3xx is retried
+// instead, and shows in the metrics.
+func noRedirects() *http.Client {
+	return &http.Client{CheckRedirect: func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }}
 }

@@ -82,7 +82,7 @@ func (a *App) setupForwarders(cfg *config.Config) error {
 		Sender:      sender,
 		Backoff:     forward.Backoff{Initial: cfg.HL7v2.Retry.Initial, Max: cfg.HL7v2.Retry.Max},
 		Poll:        a.opts.ForwardPoll,
-		SendTimeout: cfg.HL7v2.AckTimeout + 10*time.Second,
+		SendTimeout: cfg.HL7v2.AckTimeout + 5*time.Second, // dial and write on top of the ACK wait
 		Metrics:     a.metrics,
 		Logger:      a.log,
 	}
@@ -98,8 +98,11 @@ type mllpSender struct {
 	addr string
 	opts mllp.ClientOptions
 
-	mu     sync.Mutex
+	mu     sync.Mutex // serialises sends
 	client *mllp.Client
+
+	cmu     sync.Mutex // guards current, for Close during a Send
+	current *mllp.Client
 }
 
 func (s *mllpSender) Send(ctx context.Context, it store.OutboxItem) (string, error) {
@@ -111,6 +114,9 @@ func (s *mllpSender) Send(ctx context.Context, it store.OutboxItem) (string, err
 			return "", fmt.Errorf("connect downstream: %w", err)
 		}
 		s.client = c
+		s.cmu.Lock()
+		s.current = c
+		s.cmu.Unlock()
 	}
 	raw, err := s.client.Send(ctx, it.Payload)
 	if err != nil {
@@ -118,9 +124,13 @@ func (s *mllpSender) Send(ctx context.Context, it store.OutboxItem) (string, err
 	}
 	ack, err := hl7v2.ParseACK(raw)
 	if err != nil {
+		s.drop() // whatever follows on this connection cannot be trusted
 		return "", fmt.Errorf("downstream acknowledgement unreadable: %w", err)
 	}
-	if it.MessageID != "" && ack.ControlID != it.MessageID {
+	if ack.ControlID != it.MessageID {
+		// A late answer to an earlier message, or a peer that does not
+		// echo MSA-2: never take it for this message's acknowledgement.
+		s.drop()
 		return "", fmt.Errorf("downstream acknowledged control ID %q, not the message sent", ack.ControlID)
 	}
 	switch ack.Code {
@@ -133,11 +143,27 @@ func (s *mllpSender) Send(ctx context.Context, it store.OutboxItem) (string, err
 	}
 }
 
+// drop closes the connection; the next Send dials again. Called with mu
+// held.
+func (s *mllpSender) drop() {
+	if s.client != nil {
+		_ = s.client.Close()
+		s.client = nil
+		s.cmu.Lock()
+		s.current = nil
+		s.cmu.Unlock()
+	}
+}
+
+// Close closes the connection without waiting for a Send in progress (the
+// client's Close is safe to call concurrently and makes that Send fail),
+// so that shutdown is not held up by a slow peer.
 func (s *mllpSender) Close() error {
-	s.mu.Lock()
-	defer s.mu.Unlock()
-	if s.client == nil {
+	s.cmu.Lock()
+	c := s.current
+	s.cmu.Unlock()
+	if c == nil {
 		return nil
 	}
-	return s.client.Close()
+	return c.Close()
 }
