@@ -219,6 +219,12 @@ func overlaps(a, b Band) bool {
 	return a.MinAge < bMax && b.MinAge < aMax
 }
 
+// BandFor returns the band that applies at an age in years, as calc uses
+// it (Outcome.AgeYears), and false when no band covers that age.
+// Transports use it to name the equations an input may have been reported
+// with, for example to withdraw them.
+func (p Policy) BandFor(age float64) (Band, bool) { return p.band(age) }
+
 func (p Policy) band(age float64) (Band, bool) {
 	for _, b := range p.Bands {
 		if b.contains(age) {

@@ -30,11 +30,6 @@ type Meta struct {
 	// of the configuration in force.
 	SoftwareVersion string
 	ConfigHash      string
-	// Retractions are the eGFR observations the policy can report (see
-	// ingest.RetractionTemplates), withdrawn when an input is entered in
-	// error. Only Equation, EquationName, LOINC, LOINCName, Unit and Uses
-	// are read.
-	Retractions []calc.Result
 	// Duplicate tells that the request had been received before: nothing
 	// new was recorded.
 	Duplicate bool
@@ -47,6 +42,32 @@ type GroupResult struct {
 	// RecordIDs are the audit record IDs of Outcome.Results, in order;
 	// nil when not known (before commit).
 	RecordIDs []int64
+	// Withdrawals are the eGFR Observations of the group to withdraw. The
+	// caller (internal/ingest) decides them; the builder writes them.
+	Withdrawals []Withdrawal
+}
+
+// Withdrawal is one eGFR Observation sent earlier that the receiver must
+// withdraw. It is written with the id the result was written to: the id
+// derives from the group's patient identifier and collection time, the
+// equation and the assumed sex, exactly as for a result.
+type Withdrawal struct {
+	// SourceID names the input Observation (Observation.SourceID) whose
+	// status, or whose correction, withdraws the eGFR; it becomes
+	// derivedFrom.
+	SourceID string
+	// Equation, EquationName, LOINC, LOINCName, Unit and AssumedSex are
+	// those of the result withdrawn (calc.Result).
+	Equation     string
+	EquationName string
+	LOINC        string
+	LOINCName    string
+	Unit         string
+	AssumedSex   string
+	// Status is Observation.status (FHIR R4 ObservationStatus):
+	// entered-in-error (the value should not have been sent) or cancelled
+	// (the observation is unavailable).
+	Status string
 }
 
 // output is one computed resource.
@@ -64,8 +85,12 @@ type built struct {
 	notes map[*entry][]string
 }
 
-// resultID returns the id of the eGFR Observation of a patient, collection
-// time, equation and assumed sex: the first 128 bits of a SHA-256, in hex.
+// resultID returns the id of the eGFR Observation of a patient (its
+// Patient.identifier, system|value), collection time (UTC), equation and
+// assumed sex: the first 128 bits of a SHA-256, in hex. Results and
+// withdrawals both take their id from here, with the same four inputs, so
+// a withdrawal addresses exactly the Observation its result was written
+// to.
 func resultID(g *Group, equation, assumedSex string) string {
 	at := ""
 	if !g.CollectedAt.IsZero() {
@@ -116,15 +141,12 @@ func (x *Extraction) build(res []GroupResult, meta Meta, withRecords bool) (*bui
 			}
 			b.resources = append(b.resources, o, p)
 		}
-		done := map[string]bool{}
-		for _, w := range g.Withdrawn {
-			for _, tpl := range meta.Retractions {
-				if !uses(tpl.Uses, w.Analyte) || !g.reports(tpl.Uses) || done[tpl.Equation] {
-					continue
-				}
-				done[tpl.Equation] = true
-				b.resources = append(b.resources, x.withdrawal(g, w, tpl, meta))
+		for _, w := range res[gi].Withdrawals {
+			o, err := x.withdrawal(g, w, meta)
+			if err != nil {
+				return nil, err
 			}
+			b.resources = append(b.resources, o)
 		}
 		for _, rf := range out.Refusals {
 			anchor := g.refusalAnchor(rf)
@@ -157,33 +179,6 @@ func (x *Extraction) build(res []GroupResult, meta Meta, withRecords bool) (*bui
 		b.issues = append(b.issues, Issue{Severity: "information", Code: "informational", Details: text, Diagnostics: text})
 	}
 	return b, nil
-}
-
-func uses(list []calc.Analyte, a calc.Analyte) bool {
-	for _, u := range list {
-		if u == a {
-			return true
-		}
-	}
-	return false
-}
-
-// reports tells whether the group holds an input of every analyte, in any
-// status: only then can an eGFR from all of them have been sent.
-func (g *Group) reports(analytes []calc.Analyte) bool {
-	for _, a := range analytes {
-		found := false
-		for _, o := range append(append([]*Observation(nil), g.Inputs...), g.Withdrawn...) {
-			if o.Analyte == a {
-				found = true
-				break
-			}
-		}
-		if !found {
-			return false
-		}
-	}
-	return true
 }
 
 func (g *Group) bySource(id string) *Observation {
@@ -370,22 +365,59 @@ func (x *Extraction) result(g *Group, out *calc.Outcome, r calc.Result, meta Met
 		nil
 }
 
-// withdrawal is the entered-in-error eGFR Observation that withdraws an
-// eGFR derived from a withdrawn input.
-func (x *Extraction) withdrawal(g *Group, w *Observation, tpl calc.Result, meta Meta) output {
-	id := "egfr-" + resultID(g, tpl.Equation, "")
+// Notes of withdrawn eGFRs. They contain no patient data.
+const (
+	noteEnteredInError = "eGFR withdrawn: the result it was calculated from was entered in error."
+	noteCancelled      = "eGFR cancelled: the result it was calculated from was cancelled."
+	noteNoLonger       = "eGFR withdrawn: the corrected result it was calculated from no longer gives this eGFR."
+)
+
+// withdrawal is the eGFR Observation that withdraws one sent earlier: the
+// same id, code and method, the withdrawal's status, no value, and a note
+// saying why (for entered-in-error, whether the input itself was entered
+// in error or was corrected).
+func (x *Extraction) withdrawal(g *Group, w Withdrawal, meta Meta) (output, error) {
+	var status cpb.ObservationStatusCode_Value
+	text := noteEnteredInError
+	switch w.Status {
+	case "entered-in-error":
+		status = cpb.ObservationStatusCode_ENTERED_IN_ERROR
+	case "cancelled":
+		status, text = cpb.ObservationStatusCode_CANCELLED, noteCancelled
+	default:
+		return output{}, fmt.Errorf("fhir: withdrawal of equation %q: status %q is not entered-in-error or cancelled", w.Equation, w.Status)
+	}
+	if w.Equation == "" {
+		return output{}, fmt.Errorf("fhir: withdrawal without an equation")
+	}
+	var input *Observation
+	for _, o := range append(append([]*Observation(nil), g.Inputs...), g.Withdrawn...) {
+		if o.SourceID == w.SourceID {
+			input = o
+			break
+		}
+	}
+	if status == cpb.ObservationStatusCode_ENTERED_IN_ERROR && input != nil && input.Action == hl7v2.StatusCompute {
+		text = noteNoLonger
+	}
+	tpl := calc.Result{Equation: w.Equation, EquationName: w.EquationName, LOINC: w.LOINC, LOINCName: w.LOINCName, Unit: w.Unit, AssumedSex: w.AssumedSex}
+	if tpl.Unit == "" {
+		tpl.Unit = calc.UnitIndexed
+	}
+	id := "egfr-" + resultID(g, w.Equation, w.AssumedSex)
 	o := &opb.Observation{
 		Id:       &dpb.Id{Value: id},
-		Status:   &opb.Observation_StatusCode{Value: cpb.ObservationStatusCode_ENTERED_IN_ERROR},
+		Status:   &opb.Observation_StatusCode{Value: status},
 		Category: []*dpb.CodeableConcept{concept("", coding(SystemObsCategory, "laboratory", "Laboratory"))},
 		Issued:   instant(meta.Now),
-		Method:   concept(tpl.EquationName, coding(SystemEquation, tpl.Equation, tpl.EquationName)),
-		Note: []*dpb.Annotation{{Text: markdown(
-			"eGFR withdrawn: the result it was calculated from was entered in error.")}},
-		DerivedFrom: []*dpb.Reference{reference(w.entry.ref)},
+		Method:   concept(w.EquationName, coding(SystemEquation, w.Equation, w.EquationName)),
+		Note:     []*dpb.Annotation{{Text: markdown(text)}},
 	}
-	if tpl.LOINC != "" {
-		o.Code = concept(resultText(tpl), coding(SystemLOINC, tpl.LOINC, tpl.LOINCName))
+	if input != nil {
+		o.DerivedFrom = []*dpb.Reference{reference(input.entry.ref)}
+	}
+	if w.LOINC != "" {
+		o.Code = concept(resultText(tpl), coding(SystemLOINC, w.LOINC, w.LOINCName))
 	} else {
 		o.Code = concept(resultText(tpl))
 	}
@@ -394,7 +426,7 @@ func (x *Extraction) withdrawal(g *Group, w *Observation, tpl calc.Result, meta 
 		o.Effective = &opb.Observation_EffectiveX{Choice: &opb.Observation_EffectiveX_DateTime{DateTime: clone(g.effective)}}
 	}
 	return output{typ: "Observation", id: id, fullURL: "urn:uuid:" + uuidFrom("Observation/"+id),
-		res: &bcrpb.ContainedResource{OneofResource: &bcrpb.ContainedResource_Observation{Observation: o}}}
+		res: &bcrpb.ContainedResource{OneofResource: &bcrpb.ContainedResource_Observation{Observation: o}}}, nil
 }
 
 // splitComparator splits a reported value such as ">90" into its

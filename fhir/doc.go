@@ -22,17 +22,21 @@
 //     valueQuantity.unit, else the code map entry's unit. valueString and
 //     valueInteger are passed as text.
 //   - Collection time: effectiveDateTime, else effectivePeriod.start, else
-//     effectiveInstant. Less than day precision leaves it unset, so calc
-//     refuses for a missing age rather than guess one.
-//   - Patient: birthDate (day precision required, as for collection time)
-//     and gender (female, male; anything else is unknown).
+//     effectiveInstant, converted to the laboratory's time zone
+//     (ExtractOptions.Location), whose calendar date gives the age; a date
+//     without a time is that date there. Less than day precision leaves it
+//     unset, so calc refuses for a missing age rather than guess one.
+//   - Patient: an identifier with system and value is required (see
+//     Identity below); birthDate (day precision required, as for
+//     collection time) and gender (female, male; anything else is
+//     unknown).
 //   - Method and instrument for calibration rules: the first code of
 //     Observation.method (else its text), and Observation.device's
 //     identifier value (else its display).
 //   - Status: final, amended, corrected and preliminary are used;
-//     cancelled gives no eGFR and a note; entered-in-error withdraws the
-//     input (and any eGFR derived from it); registered adds nothing;
-//     unknown gives a note.
+//     cancelled gives no eGFR and a note; entered-in-error gives a note;
+//     both join their group so that the caller can withdraw the eGFRs
+//     derived from them; registered adds nothing; unknown gives a note.
 //
 // Inputs are grouped by patient and collection time; each group is one
 // calculation. A group without its own height or weight borrows the
@@ -46,15 +50,29 @@
 // equation; valueQuantity in UCUM, with comparator ">" for a capped value;
 // notes with the KDIGO category and each comment; derivedFrom its inputs)
 // and a Provenance that targets it. Refusals and notes are issues of one
-// OperationOutcome. An entered-in-error input gives, for each eGFR the
-// policy can report from it, an Observation with status entered-in-error
-// and no value, so that a receiver withdraws the value it holds.
+// OperationOutcome. Each Withdrawal of a GroupResult (decided by the
+// caller, internal/ingest, never here) becomes an Observation with status
+// entered-in-error or cancelled (FHIR R4 ObservationStatus), no value, the
+// code and method of the eGFR it withdraws, and a note saying why, so that
+// a receiver withdraws the value it holds.
 //
-// Observation and Provenance ids are derived from the patient identifier,
-// the collection time, the equation and the assumed sex (a SHA-256, never
-// the values themselves): a resent, corrected or withdrawn result gets the
-// id of the eGFR it replaces, and the forwarded transaction updates it in
-// place with PUT.
+// # Identity
+//
+// Observation and Provenance ids are derived from the patient identifier
+// (Patient.identifier as system|value), the collection time (in UTC), the
+// equation and the assumed sex, for results and withdrawals alike (a
+// SHA-256, never the values themselves): a resent, corrected or withdrawn
+// result gets the id of the eGFR it replaces, and the forwarded
+// transaction updates it in place with PUT. Only a real identifier keys
+// them: a logical id or a reference is local to one request or server, and
+// two patients sharing one ("#pat") would share ids. An input whose Patient
+// has no identifier with system and value is refused with 422 and an
+// OperationOutcome naming Patient.identifier.
+//
+// A request is recognised as resent (Request.DedupKey) by its
+// Bundle.identifier together with the SHA-256 of its body: the identical
+// bytes sent again change nothing, while different content under a reused
+// identifier is processed as a new message rather than dropped.
 //
 // # Identifiers and extensions
 //

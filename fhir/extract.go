@@ -53,11 +53,18 @@ type entry struct {
 }
 
 // DedupKey identifies the request so that a resent copy is recognised:
-// "fhir|" followed by Bundle.identifier as system|value when present,
-// otherwise by the hex SHA-256 of the request body.
+// "fhir|" followed by Bundle.identifier as system|value and "|" when
+// present, then the hex SHA-256 of the request body.
+//
+// The body hash is part of the key even when the Bundle has an identifier:
+// a sender that reuses an identifier (a counter reset, a copied template)
+// for different content must not have that content dropped as a
+// duplicate, which would leave results without their eGFR, or a stale eGFR
+// without its correction. Resending the identical bytes, as a sender does
+// after a lost answer, is still recognised as a duplicate.
 func (r *Request) DedupKey() string {
 	if r.Identifier != "" {
-		return "fhir|" + r.Identifier
+		return "fhir|" + r.Identifier + "|" + r.BodyHash
 	}
 	return "fhir|" + r.BodyHash
 }
@@ -98,6 +105,11 @@ type ExtractOptions struct {
 	// ErrPatientNotFound (possibly wrapped) when the source has no such
 	// Patient; any other error makes Extract fail with a *LookupError.
 	LookupPatient func(id string) (*ppb.Patient, error)
+	// Location is the laboratory's time zone: collection times are read
+	// as dates in it, so that age is counted from the calendar date at the
+	// laboratory (as HL7 v2 times are). A date without a time is that date
+	// in Location. nil keeps each time in its own UTC offset.
+	Location *time.Location
 }
 
 // StatusAction classifies Observation.status for eGFR; the values are
@@ -125,8 +137,10 @@ func ClassifyStatus(status string) StatusAction {
 
 // Patient is a patient that input Observations refer to.
 type Patient struct {
-	// ID identifies the patient in the audit trail: the first
-	// Patient.identifier as system|value, else the reference used.
+	// ID identifies the patient: the first Patient.identifier with both a
+	// system and a value, as system|value. It names the patient in the
+	// audit trail and keys the ids of the eGFR Observations; a Patient
+	// without one is refused (see Extract).
 	ID string
 	// BirthDateText and Gender are as received.
 	BirthDateText string
@@ -177,7 +191,8 @@ type Group struct {
 	// and weight taken from elsewhere in the request.
 	Inputs   []*Observation
 	Borrowed []*Observation
-	// Withdrawn lists inputs whose status is entered-in-error.
+	// Withdrawn lists inputs whose status withdraws them: entered-in-error
+	// or cancelled. They are not in Inputs.
 	Withdrawn []*Observation
 
 	effective *dpb.DateTime
@@ -200,8 +215,11 @@ func primary(a calc.Analyte) bool {
 }
 
 // Extract reads the calculation inputs of a request. A recognised input
-// Observation without a resolvable Patient subject is an *InputError
-// (422); a failed patient lookup is a *LookupError.
+// Observation without a resolvable Patient subject, or whose Patient has
+// no identifier with system and value, is an *InputError (422): an eGFR
+// that cannot be tied to a patient identity must not be forwarded, and the
+// ids of eGFR Observations are derived from that identity. A failed patient
+// lookup is a *LookupError.
 func (r *Request) Extract(opts ExtractOptions) (*Extraction, error) {
 	codes := opts.Codes
 	if codes == nil {
@@ -219,7 +237,7 @@ func (r *Request) Extract(opts ExtractOptions) (*Extraction, error) {
 		if entryKey == "" {
 			entryKey = fmt.Sprintf("%s#%d", r.DedupKey(), i)
 		}
-		obs, err := readObservation(e, o, codes)
+		obs, err := readObservation(e, o, codes, opts.Location)
 		if err != nil {
 			return nil, err
 		}
@@ -250,7 +268,7 @@ func (r *Request) Extract(opts ExtractOptions) (*Extraction, error) {
 
 // group builds the calculation groups, mirroring the HL7 v2 adapter: a
 // group per patient and collection time with a creatinine, cystatin C or
-// urine creatinine input that is usable or withdrawn.
+// urine creatinine input that is usable, withdrawn or cancelled.
 func (x *Extraction) group() {
 	type gkey struct {
 		patient string
@@ -271,7 +289,6 @@ func (x *Extraction) group() {
 		switch o.Action {
 		case hl7v2.StatusCancel:
 			x.Notes = append(x.Notes, note(o, "eGFR not calculated: the result was cancelled (status cancelled)."))
-			continue
 		case hl7v2.StatusUnknown:
 			x.Notes = append(x.Notes, note(o, "eGFR not calculated: the result's status is not final, amended, corrected or preliminary."))
 			continue
@@ -285,15 +302,18 @@ func (x *Extraction) group() {
 			groups[k] = g
 			x.Groups = append(x.Groups, g)
 		}
-		if o.Action == hl7v2.StatusRetract {
+		switch o.Action {
+		case hl7v2.StatusRetract:
 			g.Withdrawn = append(g.Withdrawn, o)
 			x.Notes = append(x.Notes, note(o, "eGFR withdrawn: the result it was calculated from was entered in error."))
-		} else {
+		case hl7v2.StatusCancel:
+			g.Withdrawn = append(g.Withdrawn, o)
+		default:
 			g.Compute = true
 		}
 	}
 	for _, o := range x.Inputs {
-		if g := groups[keyOf(o)]; g != nil && o.Action != hl7v2.StatusRetract {
+		if g := groups[keyOf(o)]; g != nil && o.Action != hl7v2.StatusRetract && !(primary(o.Analyte) && o.Action == hl7v2.StatusCancel) {
 			g.Inputs = append(g.Inputs, o)
 		}
 	}
@@ -329,7 +349,7 @@ func note(o *Observation, text string) Issue {
 
 // readObservation returns the input an Observation carries, or nil when
 // none of its codings is mapped.
-func readObservation(e *entry, o *opb.Observation, codes *hl7v2.CodeMap) (*Observation, error) {
+func readObservation(e *entry, o *opb.Observation, codes *hl7v2.CodeMap, loc *time.Location) (*Observation, error) {
 	ce, ok := lookupCode(codes, o.GetCode())
 	if !ok {
 		return nil, nil
@@ -404,7 +424,7 @@ func readObservation(e *entry, o *opb.Observation, codes *hl7v2.CodeMap) (*Obser
 		}
 	}
 	if t, ok := dateTimeAt(obs.effective); ok {
-		obs.CollectedAt = t
+		obs.CollectedAt = inLocation(t, obs.effective, loc)
 	}
 	return obs, nil
 }
@@ -428,6 +448,21 @@ func lookupCode(codes *hl7v2.CodeMap, cc *dpb.CodeableConcept) (hl7v2.CodeEntry,
 		}
 	}
 	return hl7v2.CodeEntry{}, false
+}
+
+// inLocation returns a collection time as calc must see it: a time of day
+// converted to the laboratory's zone, whose calendar date then gives the
+// age (calc.AgeAt); a date alone is midnight of that date in the zone.
+// nil loc leaves t as it is.
+func inLocation(t time.Time, dt *dpb.DateTime, loc *time.Location) time.Time {
+	if loc == nil {
+		return t
+	}
+	if dt.GetPrecision() == dpb.DateTime_DAY {
+		y, m, d := t.Date()
+		return time.Date(y, m, d, 0, 0, 0, 0, loc)
+	}
+	return t.In(loc)
 }
 
 // resolver finds the Patient an Observation's subject refers to.
@@ -474,7 +509,7 @@ func (rs *resolver) subject(e *entry, o *opb.Observation) (*Patient, error) {
 		if p := rs.patients[key]; p != nil {
 			return p, nil
 		}
-		for _, a := range o.GetContained() {
+		for i, a := range o.GetContained() {
 			var cr bcrpb.ContainedResource
 			if err := a.UnmarshalTo(&cr); err != nil {
 				continue
@@ -483,7 +518,7 @@ func (rs *resolver) subject(e *entry, o *opb.Observation) (*Patient, error) {
 			if pt == nil || "#"+pt.GetId().GetValue() != u {
 				continue
 			}
-			p, err := newPatient(pt, key, u, expr)
+			p, err := newPatient(pt, key, u, fmt.Sprintf("%s.contained[%d]", e.expr, i), expr)
 			if err != nil {
 				return nil, err
 			}
@@ -522,7 +557,7 @@ func (rs *resolver) subject(e *entry, o *opb.Observation) (*Patient, error) {
 	case pt == nil:
 		return nil, missing
 	}
-	p, err := newPatient(pt, key, u, expr)
+	p, err := newPatient(pt, key, u, "", expr)
 	if err != nil {
 		return nil, err
 	}
@@ -539,7 +574,7 @@ func (rs *resolver) entryPatient(pe *entry, ref string, notPatient *InputError, 
 	if p := rs.patients[key]; p != nil {
 		return p, nil
 	}
-	p, err := newPatient(pt, key, ref, expr)
+	p, err := newPatient(pt, key, ref, pe.expr, expr)
 	if err != nil {
 		return nil, err
 	}
@@ -547,14 +582,33 @@ func (rs *resolver) entryPatient(pe *entry, ref string, notPatient *InputError, 
 	return p, nil
 }
 
-func newPatient(pt *ppb.Patient, key, ref, expr string) (*Patient, error) {
-	p := &Patient{key: key, subject: ref, ID: ref}
+// newPatient reads a Patient. patientExpr is its FHIRPath in the request
+// (empty for a Patient from the patient source), subjectExpr that of the
+// subject referring to it.
+//
+// The patient is identified only by a Patient.identifier with a system and
+// a value. A logical id or a reference ("#pat", a urn:uuid fullUrl) is
+// local to one request or server and would give two patients the same key,
+// and so the same eGFR Observation ids: one patient's eGFR could replace or
+// withdraw another's. Without such an identifier the request is refused.
+func newPatient(pt *ppb.Patient, key, ref, patientExpr, subjectExpr string) (*Patient, error) {
+	p := &Patient{key: key, subject: ref}
 	for _, id := range pt.GetIdentifier() {
-		if v := id.GetValue().GetValue(); v != "" {
-			p.ID = id.GetSystem().GetValue() + "|" + v
+		sys, v := id.GetSystem().GetValue(), id.GetValue().GetValue()
+		if sys != "" && v != "" {
+			p.ID = sys + "|" + v
 			break
 		}
 	}
+	if p.ID == "" {
+		where := subjectExpr
+		if patientExpr != "" {
+			where = patientExpr + ".identifier"
+		}
+		return nil, inputError(http.StatusUnprocessableEntity, "required",
+			"the Patient has no identifier with a system and a value (Patient.identifier): an eGFR that cannot be tied to a patient identity is not calculated", where)
+	}
+	expr := subjectExpr
 	p.BirthDateText, p.BirthDate, _ = dateText(pt.GetBirthDate())
 	p.Gender = enumCode(pt.GetGender().GetValue().String())
 	p.Sex = calc.ParseSex(p.Gender)

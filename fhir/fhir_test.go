@@ -7,6 +7,7 @@ import (
 	"strings"
 	"testing"
 	"time"
+	_ "time/tzdata" // America/New_York without depending on the host's zoneinfo
 
 	"github.com/stretchr/testify/require"
 
@@ -61,6 +62,13 @@ func observation(patient string, fields map[string]string) []byte {
 }
 
 const femalePatient = `{"resourceType": "Patient", "id": "pat", "identifier": [{"system": "https://northfield-valley-lab.example/mrn", "value": "NVL-200871"}], "gender": "female", "birthDate": "1974-01-15"}`
+
+// patient returns a contained Patient "pat" with an invented identifier
+// (mrn), gender and birthDate.
+func patient(mrn, gender, birthDate string) string {
+	return `{"resourceType": "Patient", "id": "pat", "identifier": [{"system": "https://northfield-valley-lab.example/mrn", "value": "` + mrn +
+		`"}], "gender": "` + gender + `", "birthDate": "` + birthDate + `"}`
+}
 
 func testCodes(t *testing.T) *hl7v2.CodeMap {
 	t.Helper()
@@ -191,18 +199,18 @@ func TestExtractObservation(t *testing.T) {
 		},
 		{
 			name:    "partial birth date is not used",
-			patient: `{"resourceType": "Patient", "id": "pat", "gender": "male", "birthDate": "1974-01"}`,
+			patient: patient("NVL-200872", "male", "1974-01"),
 			check: func(t *testing.T, x *Extraction) {
 				p := x.Groups[0].Patient
 				require.Equal(t, "1974-01", p.BirthDateText)
 				require.True(t, p.BirthDate.IsZero())
 				require.Equal(t, calc.SexMale, p.Sex)
-				require.Equal(t, "#pat", p.ID, "no identifier: the reference names the patient")
+				require.Equal(t, "https://northfield-valley-lab.example/mrn|NVL-200872", p.ID)
 			},
 		},
 		{
 			name:    "gender other is unknown",
-			patient: `{"resourceType": "Patient", "id": "pat", "gender": "other", "birthDate": "1974-01-15"}`,
+			patient: patient("NVL-200873", "other", "1974-01-15"),
 			check: func(t *testing.T, x *Extraction) {
 				p := x.Groups[0].Patient
 				require.Equal(t, "other", p.Gender)
@@ -304,7 +312,7 @@ func TestOutputs(t *testing.T) {
 		// female 40 y, 0.8 mg/dL: CKD-EPI 2009 (Levey 2009, without the
 		// race coefficient) 141 × (0.8/0.7)^−1.209 × 0.993^40 × 1.018 =
 		// 92.2 (hand computation), above the cap.
-		x := extract(t, observation(`{"resourceType": "Patient", "id": "pat", "gender": "female", "birthDate": "1984-01-15"}`,
+		x := extract(t, observation(patient("NVL-200874", "female", "1984-01-15"),
 			map[string]string{"valueQuantity": `{"value": 0.8, "code": "mg/dL"}`}), EndpointObservation)
 		res := eval(x, pol)
 		require.Len(t, res[0].Outcome.Results, 1)
@@ -319,7 +327,7 @@ func TestOutputs(t *testing.T) {
 		pol, err := calc.Preset("nkf-asn-2021")
 		require.NoError(t, err)
 		pol.SexUnknown = calc.SexRuleBoth
-		x := extract(t, observation(`{"resourceType": "Patient", "id": "pat", "gender": "unknown", "birthDate": "1974-01-15"}`, nil), EndpointObservation)
+		x := extract(t, observation(patient("NVL-200875", "unknown", "1974-01-15"), nil), EndpointObservation)
 		res := eval(x, pol)
 		require.Len(t, res[0].Outcome.Results, 2)
 		body, err := c.Response(x, res, meta)
@@ -361,7 +369,8 @@ func TestLookupPatient(t *testing.T) {
 	body := observation(femalePatient, map[string]string{"subject": `{"reference": "Patient/nvl-p-7"}`, "contained": ""})
 	req, err := c.Decode(body, EndpointObservation)
 	require.NoError(t, err)
-	pt, err := c.DecodePatient([]byte(`{"resourceType": "Patient", "id": "nvl-p-7", "gender": "male", "birthDate": "1964-02-10"}`))
+	pt, err := c.DecodePatient([]byte(`{"resourceType": "Patient", "id": "nvl-p-7", "gender": "male", "birthDate": "1964-02-10",
+		"identifier": [{"system": "https://northfield-valley-lab.example/mrn", "value": "NVL-700007"}]}`))
 	require.NoError(t, err)
 	calls := 0
 	x, err := req.Extract(ExtractOptions{LookupPatient: func(id string) (*ppb.Patient, error) {
@@ -372,7 +381,7 @@ func TestLookupPatient(t *testing.T) {
 	require.NoError(t, err)
 	require.Equal(t, 1, calls)
 	require.Equal(t, calc.SexMale, x.Groups[0].Request.Sex)
-	require.Equal(t, "Patient/nvl-p-7", x.Groups[0].Patient.ID)
+	require.Equal(t, "https://northfield-valley-lab.example/mrn|NVL-700007", x.Groups[0].Patient.ID)
 
 	_, err = req.Extract(ExtractOptions{LookupPatient: func(string) (*ppb.Patient, error) { return nil, ErrPatientNotFound }})
 	var ie *InputError
@@ -439,4 +448,191 @@ func TestCapabilityStatement(t *testing.T) {
 		"2160-0 (creatinine)", "33863-2 (cystatin_c)", "CREA in https://northfield-valley-lab.example/codes", "98979-8"} {
 		require.Contains(t, s, want)
 	}
+}
+
+// TestPatientIdentifierRequired: the ids of eGFR Observations derive from
+// the patient's identity, so an input whose Patient has no identifier with
+// system and value is refused (422) with an OperationOutcome naming
+// Patient.identifier, wherever the Patient comes from.
+func TestPatientIdentifierRequired(t *testing.T) {
+	c := newCodec(t)
+	noID := `{"resourceType": "Patient", "id": "pat", "gender": "female", "birthDate": "1974-01-15"}`
+	valueOnly := `{"resourceType": "Patient", "id": "pat", "identifier": [{"value": "NVL-200876"}], "gender": "female", "birthDate": "1974-01-15"}`
+	bundle := `{"resourceType": "Bundle", "type": "collection", "entry": [
+	 {"fullUrl": "urn:uuid:00000000-0000-4000-8000-0000000000c1", "resource": {"resourceType": "Patient", "gender": "male", "birthDate": "1964-02-10"}},
+	 {"resource": {"resourceType": "Observation", "status": "final", "code": {"coding": [{"system": "http://loinc.org", "code": "2160-0"}]},
+	   "subject": {"reference": "urn:uuid:00000000-0000-4000-8000-0000000000c1"}, "effectiveDateTime": "2024-03-05T08:30:00Z", "valueQuantity": {"value": 1.4, "code": "mg/dL"}}}]}`
+	lookedUp, err := c.DecodePatient([]byte(`{"resourceType": "Patient", "id": "nvl-p-8", "gender": "male", "birthDate": "1964-02-10"}`))
+	require.NoError(t, err)
+	cases := []struct {
+		name   string
+		body   []byte
+		at     Endpoint
+		lookup func(string) (*ppb.Patient, error)
+		expr   string
+	}{
+		{"contained, no identifier", observation(noID, nil), EndpointObservation, nil, "Observation.contained[0].identifier"},
+		{"contained, identifier without system", observation(valueOnly, nil), EndpointObservation, nil, "Observation.contained[0].identifier"},
+		{"Bundle entry, no identifier", []byte(bundle), EndpointBundle, nil, "Bundle.entry[0].resource.identifier"},
+		{"patient source, no identifier",
+			observation(femalePatient, map[string]string{"subject": `{"reference": "Patient/nvl-p-8"}`, "contained": ""}), EndpointObservation,
+			func(string) (*ppb.Patient, error) { return lookedUp, nil }, "Observation.subject"},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			req, err := c.Decode(tc.body, tc.at)
+			require.NoError(t, err)
+			_, err = req.Extract(ExtractOptions{LookupPatient: tc.lookup})
+			var ie *InputError
+			require.ErrorAs(t, err, &ie)
+			require.Equal(t, http.StatusUnprocessableEntity, ie.Status)
+			require.Equal(t, []string{tc.expr}, ie.Issues[0].Expression)
+			require.Contains(t, ie.Issues[0].Details, "Patient.identifier")
+			body, err := c.OperationOutcome(ie.Issues)
+			require.NoError(t, err)
+			require.NoError(t, c.Validate(body))
+		})
+	}
+}
+
+// TestResultIDsDifferByPatient: two requests whose contained Patients share
+// the local id "pat" but not their identifier get different eGFR ids, so
+// one patient's eGFR can never replace or withdraw the other's.
+func TestResultIDsDifferByPatient(t *testing.T) {
+	a := extract(t, observation(patient("NVL-200877", "female", "1974-01-15"), nil), EndpointObservation)
+	b := extract(t, observation(patient("NVL-200878", "female", "1974-01-15"), nil), EndpointObservation)
+	require.NotEqual(t, resultID(a.Groups[0], "ckd-epi-2021-cr", ""), resultID(b.Groups[0], "ckd-epi-2021-cr", ""))
+	again := extract(t, observation(patient("NVL-200877", "female", "1974-01-15"), map[string]string{"id": `"nvl-o-2"`}), EndpointObservation)
+	require.Equal(t, resultID(a.Groups[0], "ckd-epi-2021-cr", ""), resultID(again.Groups[0], "ckd-epi-2021-cr", ""))
+}
+
+// TestCollectionTimeInLaboratoryZone: effective times are read in the
+// laboratory's zone before age is computed (calc.AgeAt counts calendar
+// dates in the collection time's own location).
+func TestCollectionTimeInLaboratoryZone(t *testing.T) {
+	ny, err := time.LoadLocation("America/New_York")
+	require.NoError(t, err)
+	c := newCodec(t)
+	cases := []struct {
+		name, effective string
+		loc             *time.Location
+		wantDate        string
+	}{
+		// 2024-03-16T01:00Z is 2024-03-15 21:00 in New York (UTC−4 from
+		// 10 March 2024, US daylight saving time: common knowledge).
+		{"instant in New York", `"2024-03-16T01:00:00Z"`, ny, "2024-03-15"},
+		{"instant, no zone configured keeps its offset", `"2024-03-16T01:00:00Z"`, nil, "2024-03-16"},
+		{"date alone stays that date", `"2024-03-16"`, ny, "2024-03-16"},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			req, err := c.Decode(observation(patient("NVL-200879", "male", "2006-03-16"), map[string]string{"effectiveDateTime": tc.effective}), EndpointObservation)
+			require.NoError(t, err)
+			x, err := req.Extract(ExtractOptions{Location: tc.loc})
+			require.NoError(t, err)
+			got := x.Groups[0].Request.CollectedAt
+			require.Equal(t, tc.wantDate, got.Format("2006-01-02"))
+			if tc.loc != nil {
+				require.Equal(t, tc.loc, got.Location())
+			}
+		})
+	}
+}
+
+// TestWithdrawalOutputs: a withdrawal is written with the id its result was
+// written to (same patient, collection time, equation and assumed sex),
+// the status it is given (FHIR R4 ObservationStatus) and no value.
+func TestWithdrawalOutputs(t *testing.T) {
+	c := newCodec(t)
+	cl := calc.NewCalculator(calc.Builtin())
+	pol, err := calc.Preset("nkf-asn-2021")
+	require.NoError(t, err)
+	pol.SexUnknown = calc.SexRuleBoth
+	meta := Meta{Now: time.Date(2024, 7, 1, 12, 0, 0, 0, time.UTC), SoftwareVersion: "test", ConfigHash: "h"}
+	pat := patient("NVL-200880", "unknown", "1974-01-15")
+
+	type obs struct{ ID, Status, Text string }
+	observations := func(body []byte) []obs {
+		var b struct {
+			Entry []struct {
+				Resource struct {
+					ResourceType, ID, Status string
+					Code                     struct{ Text string }
+					ValueQuantity            any
+				}
+			}
+		}
+		require.NoError(t, json.Unmarshal(body, &b))
+		var out []obs
+		for _, e := range b.Entry {
+			if e.Resource.ResourceType == "Observation" {
+				out = append(out, obs{e.Resource.ID, e.Resource.Status, e.Resource.Code.Text})
+				if e.Resource.Status != "final" {
+					require.Nil(t, e.Resource.ValueQuantity, "a withdrawal has no value")
+				}
+			}
+		}
+		return out
+	}
+
+	// The results, as calculated as if female and as if male.
+	x := extract(t, observation(pat, nil), EndpointObservation)
+	r := x.Groups[0].Request
+	r.Policy = pol
+	body, err := c.Response(x, []GroupResult{{Outcome: cl.Evaluate(r)}}, meta)
+	require.NoError(t, err)
+	results := observations(body)
+	require.Len(t, results, 2)
+
+	// The same creatinine, entered in error: the caller withdraws both.
+	x = extract(t, observation(pat, map[string]string{"status": `"entered-in-error"`}), EndpointObservation)
+	w := Withdrawal{SourceID: "nvl-o-1", Equation: "ckd-epi-2021-cr", EquationName: "CKD-EPI 2021 creatinine",
+		LOINC: "98979-8", Unit: calc.UnitIndexed, Status: "entered-in-error"}
+	wf, wm := w, w
+	wf.AssumedSex, wm.AssumedSex = "female", "male"
+	body, err = c.Response(x, []GroupResult{{Withdrawals: []Withdrawal{wf, wm}}}, meta)
+	require.NoError(t, err)
+	require.NoError(t, c.Validate(body))
+	withdrawn := observations(body)
+	require.Equal(t, []obs{
+		{results[0].ID, "entered-in-error", results[0].Text},
+		{results[1].ID, "entered-in-error", results[1].Text},
+	}, withdrawn)
+	require.Contains(t, string(body), noteEnteredInError)
+	require.Contains(t, string(body), `"derivedFrom":[{"reference":"Observation/nvl-o-1"}]`)
+
+	// Cancelled.
+	wc := w
+	wc.Status = "cancelled"
+	body, err = c.Response(x, []GroupResult{{Withdrawals: []Withdrawal{wc}}}, meta)
+	require.NoError(t, err)
+	require.NoError(t, c.Validate(body))
+	require.Equal(t, "cancelled", observations(body)[0].Status)
+	require.Contains(t, string(body), noteCancelled)
+
+	// A status that does not withdraw is a programming error.
+	wc.Status = "final"
+	_, err = c.Response(x, []GroupResult{{Withdrawals: []Withdrawal{wc}}}, meta)
+	require.Error(t, err)
+}
+
+// TestDedupKey: the identical bytes are the same request; a reused
+// Bundle.identifier with other content is not.
+func TestDedupKey(t *testing.T) {
+	c := newCodec(t)
+	body := func(value string) []byte {
+		return []byte(`{"resourceType": "Bundle", "type": "collection",
+		  "identifier": {"system": "https://northfield-valley-lab.example/lis/bundle", "value": "NVL-B-0100"},
+		  "entry": [{"fullUrl": "urn:uuid:00000000-0000-4000-8000-0000000000d1", "resource": {"resourceType": "Observation", "status": "final",
+		    "code": {"coding": [{"system": "http://loinc.org", "code": "2951-2"}]}, "valueQuantity": {"value": ` + value + `, "code": "mmol/L"}}}]}`)
+	}
+	key := func(b []byte) string {
+		req, err := c.Decode(b, EndpointBundle)
+		require.NoError(t, err)
+		return req.DedupKey()
+	}
+	first := key(body("140"))
+	require.Equal(t, first, key(body("140")))
+	require.NotEqual(t, first, key(body("141")))
+	require.True(t, strings.HasPrefix(first, "fhir|https://northfield-valley-lab.example/lis/bundle|NVL-B-0100|"), first)
 }

@@ -27,6 +27,23 @@
 // [ParseError] names the segment by position and type and the field by
 // position only, so errors can be logged safely.
 //
+// # Added observations
+//
+// [ORU.Enrich] writes each eGFR as an OBX whose identity never depends on
+// what else the message holds: OBX-3 is the LOINC code of the result and
+// OBX-4 (observation sub-ID) is the equation ID, followed by ".F" or ".M"
+// when the value is calculated as if female or male because the patient's
+// sex is not recorded (see [SubID]; at most 20 characters, the length of
+// OBX-4 in v2.5.1, e.g. "ckd-epi-2021-crcys.F"). Several equations share
+// one LOINC code (EKFC and CKiD U25 report under the generic 69405-9), and
+// with sex unknown a policy may report two values under one code; the
+// sub-ID keeps them apart. A corrected result and a withdrawal carry the
+// same OBX-3 and OBX-4 as the result they replace or remove, so a receiver
+// keyed on OBX-3 + OBX-4 applies them to the right observation. A
+// withdrawal ([Withdrawal]) is an OBX with an empty OBX-5 and OBX-11 D, W
+// or X, followed by a note saying why; which eGFRs are withdrawn is
+// decided by the caller (internal/ingest), not here.
+//
 // # Scope
 //
 // hl7v2 translates. It does not decide clinical questions: which equation to

@@ -17,19 +17,80 @@ type EnrichOptions struct {
 	// Flag returns OBX-8 (abnormal flags, table 0078) for a result; nil, or
 	// an empty return, leaves OBX-8 empty.
 	Flag func(calc.Result) string
-	// Retractions are the eGFR observations the laboratory reports, used
-	// to withdraw them when an input arrives with status D or W: for each
-	// template whose Uses contains the input's analyte, an OBX with that
-	// LOINC code, unit and equation, the input's status and no value is
-	// added. Only LOINC, LOINCName, Equation, EquationName, Unit and Uses
-	// are read.
-	Retractions []calc.Result
+	// Withdrawals[i] are the eGFR observations to withdraw in o.Orders[i]
+	// (aligned with the outcomes; a shorter or nil slice means none). The
+	// caller decides what is withdrawn and with which status; Enrich only
+	// writes it.
+	Withdrawals [][]Withdrawal
 }
 
-// Enrich returns a copy of the message with the calculation outcomes written
-// in. outcomes[i] belongs to o.Orders[i]; nil means no calculation for that
-// order. The original message is not modified, and every segment Enrich does
-// not change keeps its bytes, including MSH.
+// Withdrawal is one eGFR observation sent earlier that the receiver must
+// remove or flag. The caller (internal/ingest) decides which equations are
+// withdrawn and with which status; Enrich writes each as an OBX with the
+// same OBX-3 and OBX-4 as the result it withdraws.
+type Withdrawal struct {
+	// SourceID names the input OBX (Observation.SourceID) the withdrawal
+	// follows: the input whose status, or whose correction, withdraws the
+	// eGFR.
+	SourceID string
+	// Equation and EquationName identify the equation (OBX-17, and with
+	// AssumedSex the OBX-4 sub-ID).
+	Equation     string
+	EquationName string
+	// LOINC and LOINCName are OBX-3, as the result carried them.
+	LOINC     string
+	LOINCName string
+	// Unit is OBX-6 (UCUM); empty means calc.UnitIndexed.
+	Unit string
+	// AssumedSex is "female" or "male" for a value calculated as if that
+	// sex (calc.Result.AssumedSex), else empty.
+	AssumedSex string
+	// Status is OBX-11 (HL7 v2.5.1 table 0085): D (deletes the OBX
+	// record), W (post original as wrong) or X (results cannot be
+	// obtained for this observation).
+	Status string
+}
+
+// MaxSubIDLength is the length of OBX-4 (ST, 20 characters in HL7 v2.5.1
+// chapter 7, OBX segment field attributes). SubID never returns more.
+const MaxSubIDLength = 20
+
+// SubID returns the OBX-4 observation sub-ID of an eGFR observation: the
+// equation ID, followed by ".F" or ".M" when the value is calculated as if
+// female or male (calc.Result.AssumedSex). It depends on nothing else, so
+// a result, its correction and its withdrawal carry the same OBX-3 and
+// OBX-4 in every message, and a receiver that keys observations on
+// OBX-3 + OBX-4 applies each to the right one even when several equations
+// share a LOINC code (EKFC and CKiD U25 use the generic 69405-9) or the
+// policy reports both sexes under one code. It fails when the sub-ID would
+// exceed MaxSubIDLength or the assumed sex is neither female nor male.
+func SubID(equation, assumedSex string) (string, error) {
+	id := equation
+	switch assumedSex {
+	case "":
+	case calc.SexFemale.String():
+		id += ".F"
+	case calc.SexMale.String():
+		id += ".M"
+	default:
+		return "", fmt.Errorf("hl7v2: equation %q: assumed sex is neither female nor male", equation)
+	}
+	if equation == "" || len(id) > MaxSubIDLength {
+		return "", fmt.Errorf("hl7v2: equation %q: observation sub-ID must have 1 to %d characters", equation, MaxSubIDLength)
+	}
+	return id, nil
+}
+
+// Enrich returns a copy of the message with the calculation outcomes and
+// withdrawals written in. outcomes[i] belongs to o.Orders[i]; nil means no
+// calculation for that order. The original message is not modified, and
+// every segment Enrich does not change keeps its bytes, including MSH.
+//
+// Identity of the added observations: OBX-3 is the LOINC code of the
+// result and OBX-4 the stable sub-ID of SubID, derived only from the
+// equation and the assumed sex. A result, the corrected result that
+// replaces it and the withdrawal that removes it therefore carry the same
+// OBX-3 and OBX-4, whichever other results the message holds.
 //
 // For each order:
 //
@@ -38,29 +99,28 @@ type EnrichOptions struct {
 //     after that OBX's own NTE segments, so existing notes stay attached to
 //     their observation: OBX-2 NM (SN ">^90" when the reported value has a
 //     comparator, as a capped value does), OBX-3 <LOINC>^<LOINC name>^LN,
-//     OBX-4 a sub-ID only when one order gets the same code twice, OBX-5 the
-//     reported value, OBX-6 <unit>^^UCUM, OBX-8 from EnrichOptions.Flag,
-//     OBX-11 the status of its inputs (the least final of them: R, P, S,
-//     then C, then F), OBX-14 the specimen collection time as received,
-//     OBX-17 <equation id>^<equation name>^L (OBX-17 is CE in v2.5.1 and
-//     CWE from v2.6; the first three components are the same). NTE segments
-//     follow with the assumed sex if any, the KDIGO category and each
-//     comment.
+//     OBX-4 the sub-ID, OBX-5 the reported value, OBX-6 <unit>^^UCUM, OBX-8
+//     from EnrichOptions.Flag, OBX-11 the status of its inputs (the least
+//     final of them: R, P, S, then C, then F), OBX-14 the specimen
+//     collection time as received, OBX-17 <equation id>^<equation name>^L
+//     (OBX-17 is CE in v2.5.1 and CWE from v2.6; the first three
+//     components are the same). NTE segments follow with the assumed sex if
+//     any, the KDIGO category and each comment.
+//   - Each Withdrawal becomes an OBX after the input OBX it names (and its
+//     notes, and the results placed there): OBX-2 NM, OBX-3 and OBX-4 as
+//     the result it withdraws, OBX-5 empty, OBX-6 the unit, OBX-11 the
+//     withdrawal's status, OBX-14 the collection time, OBX-17 the
+//     equation; then an NTE saying why.
 //   - Each Refusal becomes an NTE after the input OBX it names (by
 //     SourceID, else by analyte, else the order's first creatinine or
 //     cystatin C result, else after the OBR), unless that input's status
 //     already explains the absence of an eGFR. Identical notes at one place
 //     are written once.
 //   - Input status (OBX-11, HL7 v2.5.1 table 0085), for creatinine, cystatin
-//     C and urine creatinine: C (record is a correction) gives a corrected
-//     eGFR with status C. X (results cannot be obtained) gives no eGFR and a
-//     note. D (deletes the OBX record) and W (post original as wrong) give
-//     an eGFR OBX per matching EnrichOptions.Retractions template (one that
-//     uses the input's analyte and whose every analyte the order reports)
-//     with the same status and an empty OBX-5, so the receiver removes or
-//     flags the eGFR it holds, followed by a note; without a matching
-//     template, a note on the input. An empty or unknown status gives a
-//     note. I, N, O and U add nothing.
+//     C and urine creatinine: X (results cannot be obtained), an empty or
+//     unknown status get a note on the input. D and W get a note only when
+//     no withdrawal names the input. Which eGFRs are withdrawn is not
+//     decided here.
 //
 // OBX set IDs (OBX-1) following an insertion are renumbered within their
 // order, or across the message when the sender numbers OBX segments across
@@ -69,12 +129,19 @@ func (o *ORU) Enrich(outcomes []*calc.Outcome, opts EnrichOptions) (*Message, er
 	if len(outcomes) != len(o.Orders) {
 		return nil, fmt.Errorf("hl7v2: %d outcomes for %d orders", len(outcomes), len(o.Orders))
 	}
+	if len(opts.Withdrawals) > len(o.Orders) {
+		return nil, fmt.Errorf("hl7v2: withdrawals for %d orders, message has %d", len(opts.Withdrawals), len(o.Orders))
+	}
 	if opts.CommentSource == "" {
 		opts.CommentSource = "L"
 	}
 	e := &enricher{oru: o, d: o.msg.d, opts: opts, plans: map[int]*insertion{}}
 	for i, ord := range o.Orders {
-		if err := e.planOrder(ord, outcomes[i]); err != nil {
+		var ws []Withdrawal
+		if i < len(opts.Withdrawals) {
+			ws = opts.Withdrawals[i]
+		}
+		if err := e.planOrder(ord, outcomes[i], ws); err != nil {
 			return nil, err
 		}
 	}
@@ -114,24 +181,27 @@ func (e *enricher) note(seg int, text string) {
 	p.notes = append(p.notes, text)
 }
 
-// Note texts for statuses. They contain no patient data.
+// Note texts. They contain no patient data.
 const (
 	noteCancelled     = "eGFR not calculated: the result could not be obtained (status X)."
 	noteStatusUnknown = "eGFR not calculated: the result status is missing or not recognised."
 	noteWithdrawn     = "Any eGFR calculated earlier from this result is withdrawn."
 	noteDeleted       = "eGFR withdrawn: the result it was calculated from has been deleted."
 	noteWrong         = "eGFR withdrawn: the result it was calculated from was reported in error."
+	noteVoided        = "eGFR cancelled: the result it was calculated from could not be obtained."
+	noteNoLonger      = "eGFR withdrawn: the corrected result it was calculated from no longer gives this eGFR."
 )
 
-type retraction struct {
-	tpl calc.Result
-	obs *Observation
-}
+// withdrawalStatuses are the OBX-11 codes of table 0085 a withdrawal may
+// carry.
+var withdrawalStatuses = map[string]bool{"D": true, "W": true, "X": true}
 
-func (e *enricher) planOrder(ord *Order, out *calc.Outcome) error {
+func (e *enricher) planOrder(ord *Order, out *calc.Outcome, withdrawals []Withdrawal) error {
 	silenced := map[*Observation]bool{}
-	retractions := map[string]retraction{}
-	var retractOrder []string
+	named := map[string]bool{}
+	for _, w := range withdrawals {
+		named[w.SourceID] = true
+	}
 	for _, obs := range ord.Observations {
 		if !primary(obs.Analyte) {
 			continue
@@ -145,39 +215,23 @@ func (e *enricher) planOrder(ord *Order, out *calc.Outcome) error {
 			e.note(obs.seg, noteStatusUnknown)
 		case StatusRetract:
 			silenced[obs] = true
-			matched := false
-			for _, tpl := range e.opts.Retractions {
-				if !usesAnalyte(tpl.Uses, obs.Analyte) || !ord.reports(tpl.Uses) {
-					continue
-				}
-				matched = true
-				key := tpl.Equation + "|" + tpl.LOINC
-				r, seen := retractions[key]
-				if !seen {
-					retractOrder = append(retractOrder, key)
-				}
-				if !seen || obs.seg > r.obs.seg {
-					retractions[key] = retraction{tpl: tpl, obs: obs}
-				}
-			}
-			if !matched {
+			if !named[obs.SourceID] {
 				e.note(obs.seg, noteWithdrawn)
 			}
 		}
 	}
 
 	if out != nil {
-		codes := map[string]int{}
-		for _, r := range out.Results {
-			codes[r.LOINC]++
-		}
-		subIDs := map[string]int{}
 		for _, r := range out.Results {
 			if r.LOINC == "" {
 				return fmt.Errorf("hl7v2: order %d: result of equation %q has no LOINC code", ord.Index, r.Equation)
 			}
 			if r.Reported == "" {
 				return fmt.Errorf("hl7v2: order %d: result of equation %q has no reported value", ord.Index, r.Equation)
+			}
+			sub, err := SubID(r.Equation, r.AssumedSex)
+			if err != nil {
+				return fmt.Errorf("%w (order %d)", err, ord.Index)
 			}
 			used := usedObservations(ord, out, r)
 			anchor := ord.seg
@@ -189,19 +243,31 @@ func (e *enricher) planOrder(ord *Order, out *calc.Outcome) error {
 			case len(ord.Observations) > 0:
 				anchor = ord.Observations[len(ord.Observations)-1].seg
 			}
-			sub := ""
-			if codes[r.LOINC] > 1 {
-				subIDs[r.LOINC]++
-				sub = strconv.Itoa(subIDs[r.LOINC])
-			}
 			p := e.at(anchor)
 			p.blocks = append(p.blocks, e.resultBlock(ord, r, combinedStatus(used), sub))
 		}
 	}
-	for _, key := range retractOrder {
-		r := retractions[key]
-		p := e.at(r.obs.seg)
-		p.blocks = append(p.blocks, e.retractionBlock(ord, r.tpl, r.obs.Status))
+	for _, w := range withdrawals {
+		if w.LOINC == "" {
+			return fmt.Errorf("hl7v2: order %d: withdrawal of equation %q has no LOINC code", ord.Index, w.Equation)
+		}
+		if !withdrawalStatuses[w.Status] {
+			return fmt.Errorf("hl7v2: order %d: withdrawal of equation %q: status %q is not D, W or X", ord.Index, w.Equation, w.Status)
+		}
+		sub, err := SubID(w.Equation, w.AssumedSex)
+		if err != nil {
+			return fmt.Errorf("%w (order %d)", err, ord.Index)
+		}
+		input := ord.bySource(w.SourceID)
+		anchor := ord.seg
+		switch {
+		case input != nil:
+			anchor = input.seg
+		case len(ord.Observations) > 0:
+			anchor = ord.Observations[len(ord.Observations)-1].seg
+		}
+		p := e.at(anchor)
+		p.blocks = append(p.blocks, e.withdrawalBlock(ord, w, sub, input))
 	}
 	if out != nil {
 		for _, rf := range out.Refusals {
@@ -221,33 +287,6 @@ func (e *enricher) planOrder(ord *Order, out *calc.Outcome) error {
 		}
 	}
 	return nil
-}
-
-// reports tells whether the order holds an observation of every analyte, in
-// any status: only then can an eGFR from all of them have been sent.
-func (ord *Order) reports(analytes []calc.Analyte) bool {
-	for _, a := range analytes {
-		found := false
-		for _, obs := range ord.Observations {
-			if obs.Analyte == a {
-				found = true
-				break
-			}
-		}
-		if !found {
-			return false
-		}
-	}
-	return true
-}
-
-func usesAnalyte(uses []calc.Analyte, a calc.Analyte) bool {
-	for _, u := range uses {
-		if u == a {
-			return true
-		}
-	}
-	return false
 }
 
 func (ord *Order) bySource(id string) *Observation {
@@ -397,16 +436,26 @@ func (e *enricher) resultBlock(ord *Order, r calc.Result, status, sub string) []
 	return segs
 }
 
-func (e *enricher) retractionBlock(ord *Order, tpl calc.Result, status string) []*Segment {
-	unit := tpl.Unit
+// withdrawalBlock writes a withdrawal and the note saying why. The note
+// follows the withdrawal's status, and for D the status of the input it
+// names: an input that is itself deleted, or one that was corrected and no
+// longer gives the eGFR.
+func (e *enricher) withdrawalBlock(ord *Order, w Withdrawal, sub string, input *Observation) []*Segment {
+	unit := w.Unit
 	if unit == "" {
 		unit = calc.UnitIndexed
 	}
 	text := noteDeleted
-	if status == "W" {
+	switch {
+	case w.Status == "W":
 		text = noteWrong
+	case w.Status == "X":
+		text = noteVoided
+	case input != nil && ClassifyStatus(input.Status) == StatusCompute:
+		text = noteNoLonger
 	}
-	return []*Segment{e.obx(ord, "NM", tpl, "", "", unit, "", status), e.nte(1, text)}
+	r := calc.Result{Equation: w.Equation, EquationName: w.EquationName, LOINC: w.LOINC, LOINCName: w.LOINCName}
+	return []*Segment{e.obx(ord, "NM", r, sub, "", unit, "", w.Status), e.nte(1, text)}
 }
 
 func (e *enricher) obx(ord *Order, valueType string, r calc.Result, sub, value, unit, flag, status string) *Segment {

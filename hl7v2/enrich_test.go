@@ -37,6 +37,11 @@ var (
 	}
 )
 
+func withdrawal(tpl calc.Result, source, assumedSex, status string) Withdrawal {
+	return Withdrawal{SourceID: source, Equation: tpl.Equation, EquationName: tpl.EquationName,
+		LOINC: tpl.LOINC, LOINCName: tpl.LOINCName, Unit: tpl.Unit, AssumedSex: assumedSex, Status: status}
+}
+
 func result(tpl calc.Result, reported, category string, comments ...string) calc.Result {
 	tpl.Reported, tpl.Category, tpl.Comments = reported, category, comments
 	return tpl
@@ -117,7 +122,14 @@ func TestEnrichGolden(t *testing.T) {
 		{
 			in: "oru_cancel_delete.hl7", want: "oru_cancel_delete.enriched.hl7",
 			outcomes: []*calc.Outcome{nil, nil},
-			opts:     EnrichOptions{Retractions: []calc.Result{egfrCr, egfrCrCys}},
+			// As internal/ingest decides for this message: the X creatinine
+			// of order 1 cancels the creatinine eGFR, the D creatinine of
+			// order 2 deletes it. Neither order reports cystatin C, so no
+			// creatinine-cystatin C eGFR can have been sent.
+			opts: EnrichOptions{Withdrawals: [][]Withdrawal{
+				{withdrawal(egfrCr, "OBR1/OBX1", "", "X")},
+				{withdrawal(egfrCr, "OBR2/OBX1", "", "D")},
+			}},
 		},
 	}
 	for _, tt := range tests {
@@ -203,16 +215,16 @@ func TestEnrichStatusesAndNotes(t *testing.T) {
 		`NTE|1|O|Any eGFR calculated earlier from this result is withdrawn.`,
 		`OBX|3|NM|2160-0^Creatinine^LN||0.8|mg/dL|||||P`,
 		`NTE|1|O|eGFR not calculated: no equation in the policy applies to these results.`,
-		`OBX|4|NM|98979-8^`+egfrCr.LOINCName+`^LN||75|mL/min/{1.73_m2}^^UCUM||N|||P|||20250314080000|||ckd-epi-2021-cr^CKD-EPI 2021 creatinine^L`,
+		`OBX|4|NM|98979-8^`+egfrCr.LOINCName+`^LN|ckd-epi-2021-cr|75|mL/min/{1.73_m2}^^UCUM||N|||P|||20250314080000|||ckd-epi-2021-cr^CKD-EPI 2021 creatinine^L`,
 		`OBX|5|NM|2951-2^Sodium^LN||140|mmol/L|||||F`,
 	)
 	require.Equal(t, strings.ReplaceAll(want, "\r", "\n"), strings.ReplaceAll(string(got.Encode()), "\r", "\n"))
 }
 
-func TestEnrichRepeatedCodeGetsSubIDs(t *testing.T) {
+func TestEnrichSexVariantsGetStableSubIDs(t *testing.T) {
 	// With sex unknown a policy may report both values; OBX-3 plus OBX-4
 	// must identify each observation within the order (HL7 v2.5.1 chapter
-	// 7, OBX-4 Observation Sub-ID).
+	// 7, OBX-4 Observation Sub-ID), and the same one in every message.
 	o := extract(t, "oru_creatinine_final.hl7")
 	female := result(egfrCr, "68", "G2")
 	female.AssumedSex = "female"
@@ -229,7 +241,7 @@ func TestEnrichRepeatedCodeGetsSubIDs(t *testing.T) {
 			notes = append(notes, s.Field(3).String())
 		}
 	}
-	require.Equal(t, []string{"1", "2"}, subs)
+	require.Equal(t, []string{"ckd-epi-2021-cr.F", "ckd-epi-2021-cr.M"}, subs)
 	require.Equal(t, []string{
 		"Calculated as if the patient were female: sex is not recorded as female or male.",
 		"Calculated as if the patient were male: sex is not recorded as female or male.",
@@ -303,4 +315,200 @@ func TestACKGolden(t *testing.T) {
 	checkGolden(t, "ack_ar_no_msh.hl7", ar.Encode())
 	require.NotContains(t, string(ar.Encode()), "Marlowe")
 	require.NotContains(t, string(ar.Encode()), "NVL0000123")
+}
+
+// TestSubID: OBX-4 is the equation ID plus ".F"/".M" for an assumed sex,
+// and fits OBX-4 (ST, length 20 in HL7 v2.5.1 chapter 7, OBX field
+// attributes) for every equation filtrate implements.
+func TestSubID(t *testing.T) {
+	tests := []struct {
+		equation, sex, want string
+		ok                  bool
+	}{
+		{"ekfc-cr", "", "ekfc-cr", true},
+		{"ckd-epi-2021-cr", "female", "ckd-epi-2021-cr.F", true},
+		{"ckd-epi-2021-cr", "male", "ckd-epi-2021-cr.M", true},
+		{"ckd-epi-2021-crcys", "female", "ckd-epi-2021-crcys.F", true}, // exactly 20
+		{"ckd-epi-2021-crcys-x", "male", "", false},                    // 22: too long
+		{"ckd-epi-2021-cr", "unknown", "", false},
+		{"", "", "", false},
+	}
+	for _, tt := range tests {
+		t.Run(tt.equation+"/"+tt.sex, func(t *testing.T) {
+			got, err := SubID(tt.equation, tt.sex)
+			if !tt.ok {
+				require.Error(t, err)
+				return
+			}
+			require.NoError(t, err)
+			require.Equal(t, tt.want, got)
+		})
+	}
+	for _, id := range calc.Builtin().IDs() {
+		got, err := SubID(id, "female")
+		require.NoError(t, err, id)
+		require.LessOrEqual(t, len(got), MaxSubIDLength, id)
+	}
+}
+
+// EKFC templates: EKFC has no equation-specific LOINC code, so the policy's
+// generic 69405-9 is used (calc.GenericLOINC; LOINC 69405-9 "Glomerular
+// filtration rate/1.73 sq M.predicted", name as in package calc).
+var (
+	ekfcCr    = calc.Result{Equation: "ekfc-cr", EquationName: "EKFC creatinine", LOINC: calc.GenericLOINC, LOINCName: calc.GenericLOINCName, Uses: []calc.Analyte{calc.Creatinine}, Unit: calc.UnitIndexed}
+	ekfcCys   = calc.Result{Equation: "ekfc-cys", EquationName: "EKFC cystatin C", LOINC: calc.GenericLOINC, LOINCName: calc.GenericLOINCName, Uses: []calc.Analyte{calc.CystatinC}, Unit: calc.UnitIndexed}
+	ekfcCrCys = calc.Result{Equation: "ekfc-crcys", EquationName: "EKFC creatinine–cystatin C (mean)", LOINC: calc.GenericLOINC, LOINCName: calc.GenericLOINCName, Uses: []calc.Analyte{calc.Creatinine, calc.CystatinC}, Unit: calc.UnitIndexed}
+)
+
+// obxView is OBX-3.1, OBX-4, OBX-5, OBX-11 and OBX-17.1 of an added OBX
+// and the text of the NTE after it.
+type obxView struct {
+	code, sub, value, status, equation, note string
+}
+
+// added lists the OBX segments whose OBX-17 names an equation (the ones
+// Enrich writes), each with the first NTE after it.
+func added(m *Message) []obxView {
+	var out []obxView
+	segs := m.Segments()
+	for i, s := range segs {
+		if s.Name() != "OBX" || s.Field(17).Component(1).String() == "" {
+			continue
+		}
+		v := obxView{code: s.Field(3).Component(1).String(), sub: s.Field(4).String(), value: s.Field(5).String(),
+			status: s.Field(11).String(), equation: s.Field(17).Component(1).String()}
+		if i+1 < len(segs) && segs[i+1].Name() == "NTE" {
+			v.note = segs[i+1].Field(3).String()
+		}
+		out = append(out, v)
+	}
+	return out
+}
+
+// TestEnrichWithdrawals: each withdrawal is written as given, with the
+// OBX-3 and OBX-4 of the result it withdraws, after the input it names,
+// and with a note that follows its status (HL7 v2.5.1 table 0085: D deletes
+// the OBX record, W posts the original as wrong, X results cannot be
+// obtained). Enrich adds no withdrawal of its own.
+func TestEnrichWithdrawals(t *testing.T) {
+	msg := func(crStatus, cysStatus string) *ORU {
+		m, err := Parse([]byte(seg(
+			`MSH|^~\&|NVLAB|NVL|EHR|NVH|20250314093000||ORU^R01|W1|P|2.5.1`,
+			`PID|1||NVL0000777^^^NVL^MR||Fenwright^Odile||19700101|F`,
+			`OBR|1||||||20250314080000`,
+			`OBX|1|NM|2160-0^Creatinine^LN||1.0|mg/dL|||||`+crStatus,
+			`OBX|2|NM|33863-2^Cystatin C^LN||1.0|mg/L|||||`+cysStatus,
+		)))
+		require.NoError(t, err)
+		o, err := ExtractORU(m, ExtractOptions{})
+		require.NoError(t, err)
+		return o
+	}
+	tests := []struct {
+		name        string
+		cr, cys     string
+		outcome     *calc.Outcome
+		withdrawals []Withdrawal
+		want        []obxView
+		inputNote   string // a note expected on the input OBX
+	}{
+		{
+			name: "cystatin C posted as wrong; the creatinine eGFR stays", cr: "F", cys: "W",
+			outcome: &calc.Outcome{
+				Inputs:  []calc.InputUse{{Analyte: calc.Creatinine, SourceID: "OBR1/OBX1"}},
+				Results: []calc.Result{result(ekfcCr, "64", "G2")},
+			},
+			withdrawals: []Withdrawal{
+				withdrawal(ekfcCys, "OBR1/OBX2", "", "W"),
+				withdrawal(ekfcCrCys, "OBR1/OBX2", "", "W"),
+			},
+			want: []obxView{
+				{"69405-9", "ekfc-cr", "64", "F", "ekfc-cr", "KDIGO GFR category: G2"},
+				{"69405-9", "ekfc-cys", "", "W", "ekfc-cys", noteWrong},
+				{"69405-9", "ekfc-crcys", "", "W", "ekfc-crcys", noteWrong},
+			},
+		},
+		{
+			name: "creatinine deleted, sex variants", cr: "D", cys: "F",
+			withdrawals: []Withdrawal{
+				withdrawal(egfrCr, "OBR1/OBX1", "female", "D"),
+				withdrawal(egfrCr, "OBR1/OBX1", "male", "D"),
+			},
+			want: []obxView{
+				{"98979-8", "ckd-epi-2021-cr.F", "", "D", "ckd-epi-2021-cr", noteDeleted},
+				{"98979-8", "ckd-epi-2021-cr.M", "", "D", "ckd-epi-2021-cr", noteDeleted},
+			},
+		},
+		{
+			name: "creatinine cancelled", cr: "X", cys: "F",
+			withdrawals: []Withdrawal{withdrawal(egfrCr, "OBR1/OBX1", "", "X")},
+			want:        []obxView{{"98979-8", "ckd-epi-2021-cr", "", "X", "ckd-epi-2021-cr", noteVoided}},
+			inputNote:   noteCancelled,
+		},
+		{
+			name: "corrected creatinine no longer gives the eGFR", cr: "C", cys: "F",
+			outcome: &calc.Outcome{Refusals: []calc.Refusal{{Code: calc.ReasonValueNotNumeric, Message: calc.ReasonValueNotNumeric.Describe(),
+				Analyte: calc.Creatinine, SourceID: "OBR1/OBX1"}}},
+			withdrawals: []Withdrawal{withdrawal(egfrCr, "OBR1/OBX1", "", "D")},
+			want:        []obxView{{"98979-8", "ckd-epi-2021-cr", "", "D", "ckd-epi-2021-cr", noteNoLonger}},
+			inputNote:   calc.ReasonValueNotNumeric.Describe(),
+		},
+		{
+			name: "deleted input without withdrawals gets a note", cr: "D", cys: "F",
+			inputNote: noteWithdrawn,
+		},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			o := msg(tt.cr, tt.cys)
+			got, err := o.Enrich([]*calc.Outcome{tt.outcome}, EnrichOptions{Withdrawals: [][]Withdrawal{tt.withdrawals}})
+			require.NoError(t, err)
+			require.Equal(t, tt.want, added(got))
+			for _, s := range got.Segments() {
+				if s.Name() == "OBX" && s.Field(17).String() != "" {
+					require.Equal(t, "NM", s.Field(2).String())
+					require.Equal(t, "20250314080000", s.Field(14).String(), "OBX-14 is the collection time")
+					require.Equal(t, calc.UnitIndexed+"^^UCUM", s.Field(6).Raw())
+				}
+			}
+			// Each withdrawal follows the input it names.
+			anchorCode := map[string]string{"OBR1/OBX1": "2160-0", "OBR1/OBX2": "33863-2"}
+			var after []string
+			input := ""
+			for _, s := range got.Segments() {
+				switch {
+				case s.Name() != "OBX":
+				case s.Field(17).String() == "":
+					input = s.Field(3).Component(1).String()
+				case s.Field(5).String() == "":
+					after = append(after, input)
+				}
+			}
+			var wantAfter []string
+			for _, w := range tt.withdrawals {
+				wantAfter = append(wantAfter, anchorCode[w.SourceID])
+			}
+			require.Equal(t, wantAfter, after)
+			if tt.inputNote != "" {
+				require.Contains(t, string(got.Encode()), "\rNTE|1|L|"+tt.inputNote+"\r")
+			} else {
+				require.NotContains(t, string(got.Encode()), noteWithdrawn)
+			}
+		})
+	}
+}
+
+func TestEnrichWithdrawalErrors(t *testing.T) {
+	o := extract(t, "oru_creatinine_final.hl7")
+	bad := []Withdrawal{
+		withdrawal(egfrCr, "OBR1/OBX2", "", "F"),        // not a withdrawing status
+		withdrawal(egfrCr, "OBR1/OBX2", "unknown", "D"), // no sub-ID for this sex
+		func() Withdrawal { w := withdrawal(egfrCr, "OBR1/OBX2", "", "D"); w.LOINC = ""; return w }(),
+	}
+	for _, w := range bad {
+		_, err := o.Enrich([]*calc.Outcome{nil}, EnrichOptions{Withdrawals: [][]Withdrawal{{w}}})
+		require.Error(t, err)
+	}
+	_, err := o.Enrich([]*calc.Outcome{nil}, EnrichOptions{Withdrawals: [][]Withdrawal{nil, nil}})
+	require.Error(t, err, "more withdrawal lists than orders")
 }

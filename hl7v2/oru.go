@@ -114,12 +114,14 @@ const (
 	// verified), S (partial). The value is used and the eGFR carries the
 	// same status; a correction gives a corrected eGFR.
 	StatusCompute StatusAction = iota
-	// StatusCancel: X (results cannot be obtained). No eGFR; a note says
-	// why.
+	// StatusCancel: X (results cannot be obtained). No eGFR; an eGFR OBX
+	// with status X and no value cancels any eGFR sent earlier from this
+	// result, and a note says why.
 	StatusCancel
 	// StatusRetract: D (deletes the OBX record) and W (posted as wrong).
 	// An eGFR OBX with the same status and no value withdraws the eGFR
-	// sent earlier from this result.
+	// sent earlier from this result. (Which eGFRs to withdraw is decided
+	// by the caller: see EnrichOptions.Withdrawals.)
 	StatusRetract
 	// StatusPending: I (specimen in lab), N (not asked), O (order detail
 	// only), U (status change to final without retransmitting the value).

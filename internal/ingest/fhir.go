@@ -123,7 +123,7 @@ func (h *FHIR) Handle(ctx context.Context, at fhir.Endpoint, body []byte) (p FHI
 		return h.refuse(err)
 	}
 	st := h.State()
-	opts := fhir.ExtractOptions{Codes: st.Codes}
+	opts := fhir.ExtractOptions{Codes: st.Codes, Location: st.Location}
 	if h.Patients != nil {
 		opts.LookupPatient = func(id string) (*ppb.Patient, error) { return h.Patients.Patient(ctx, id) }
 	}
@@ -136,8 +136,9 @@ func (h *FHIR) Handle(ctx context.Context, at fhir.Endpoint, body []byte) (p FHI
 	res := make([]fhir.GroupResult, len(evals))
 	for i, e := range evals {
 		res[i].Outcome = e.Outcome
+		res[i].Withdrawals = fhirWithdrawals(st, x, x.Groups[i], e)
 	}
-	meta := fhir.Meta{Now: h.now(), SoftwareVersion: h.Version, ConfigHash: st.Snapshot.ConfigHash, Retractions: st.Retractions}
+	meta := fhir.Meta{Now: h.now(), SoftwareVersion: h.Version, ConfigHash: st.Snapshot.ConfigHash}
 	var (
 		outs      []pipeline.Output
 		forwarded []byte
@@ -318,7 +319,7 @@ func (h *FHIR) ServeMetadata(w http.ResponseWriter, _ *http.Request) {
 		date = h.now()
 	}
 	body, err := h.Codec.CapabilityStatement(fhir.Capabilities{
-		Version: h.Version, Site: h.Site, Date: date, Codes: entries, Outputs: h.State().Retractions,
+		Version: h.Version, Site: h.Site, Date: date, Codes: entries, Outputs: h.State().Outputs,
 	})
 	if err != nil {
 		h.logger().Error("fhir: writing the capability statement failed", "err", err)

@@ -18,6 +18,7 @@ import (
 	"sync/atomic"
 	"testing"
 	"time"
+	_ "time/tzdata" // America/New_York without depending on the host's zoneinfo
 
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/testutil"
@@ -125,10 +126,11 @@ func newEnv(t *testing.T, opts ...option) *env {
 	codec, err := fhir.NewCodec()
 	require.NoError(t, err)
 	state := &ingest.State{
-		Snapshot:    &pipeline.Snapshot{Policy: pol, ConfigHash: testHash},
-		Codes:       codes,
-		Location:    time.UTC,
-		Retractions: ingest.RetractionTemplates(pol, c.Registry()),
+		Snapshot:  &pipeline.Snapshot{Policy: pol, ConfigHash: testHash},
+		Codes:     codes,
+		Location:  time.UTC,
+		Equations: c.Registry(),
+		Outputs:   ingest.OutputTemplates(pol, c.Registry()),
 	}
 	logs := &bytes.Buffer{}
 	proc := pipeline.NewProcessor(c, st, testVersion, m)
@@ -476,9 +478,22 @@ func TestFHIRRefusals(t *testing.T) {
 		{string(calc.ReasonSexUnknown), "Bundle.entry[4].resource"},    // gender unknown, policy refuses
 		{string(calc.ReasonAgeMissing), "Bundle.entry[6].resource"},    // birthDate "1980" is not a full date
 	}, got)
+	// No eGFR; the cancelled cystatin C cancels the eGFRs that could derive
+	// from it (DESIGN.md: cancelled results cancel it): cystatin C alone
+	// and, as creatinine is reported too, creatinine–cystatin C.
+	var cancelled []string
 	for _, en := range a.Entry {
-		require.NotEqual(t, "Observation", en.Resource.ResourceType, "no eGFR expected")
+		if en.Resource.ResourceType != "Observation" {
+			continue
+		}
+		require.Equal(t, "cancelled", en.Resource.Status)
+		require.Nil(t, en.Resource.ValueQuantity)
+		require.Equal(t, []struct{ Reference string }{{"urn:uuid:2f0a9b61-3c44-4d7e-8b20-000000000012"}}, en.Resource.DerivedFrom)
+		cancelled = append(cancelled, en.Resource.Code.Coding[0].Code)
 	}
+	// LOINC 50210-4 (cystatin C-based eGFR, CKD-EPI 2012) and 98980-6
+	// (creatinine–cystatin C, CKD-EPI 2021), as package calc assigns them.
+	require.Equal(t, []string{"50210-4", "98980-6"}, cancelled)
 	// The forwarded censored creatinine carries the reason as a note.
 	require.Contains(t, string(p.Forwarded), calc.ReasonValueCensored.Describe())
 	// Audit: the censored input as received.
@@ -505,21 +520,23 @@ func TestFHIRBadInput(t *testing.T) {
 		status   int
 		code     string // issue type
 		where    string // expression or location of the first issue
+		detail   string // text the answer must contain, if any
 	}{
-		{"malformed JSON", fhir.EndpointBundle, `{"resourceType": "Bundle",` + "\n" + `"type": }`, 400, "structure", "line 2, column 9"},
-		{"not an object", fhir.EndpointBundle, `[1, 2]`, 400, "structure", ""},
-		{"invalid UTF-8", fhir.EndpointBundle, "{\"resourceType\": \"Bundle\", \"type\": \"\xff\"}", 400, "structure", ""},
-		{"validation: decimal as string", fhir.EndpointBundle, string(readGolden(t, "bad-validation")), 400, "value", "Bundle.entry[0].resource.valueQuantity.value"},
-		{"validation: unknown element", fhir.EndpointBundle, string(readGolden(t, "bad-unknown-element")), 400, "structure", "specimenColour"},
-		{"validation: missing status", fhir.EndpointObservation, `{"resourceType": "Observation", "code": {"text": "creatinine"}}`, 400, "required", "Observation"},
-		{"wrong resourceType for [base]", fhir.EndpointBundle, string(readGolden(t, "bad-resource-type")), 400, "invalid", "resourceType"},
-		{"wrong resourceType for [base]/Observation", fhir.EndpointObservation, string(readGolden(t, "observation-bad-bundle")), 400, "invalid", "resourceType"},
-		{"no resourceType", fhir.EndpointBundle, `{"type": "batch"}`, 400, "required", "resourceType"},
-		{"unsupported Bundle type", fhir.EndpointBundle, string(readGolden(t, "bad-bundle-type")), 422, "not-supported", "Bundle.type"},
-		{"missing subject", fhir.EndpointBundle, string(readGolden(t, "bad-missing-subject")), 422, "required", "Bundle.entry[0].resource.subject"},
-		{"patient not in request, no source", fhir.EndpointBundle, string(readGolden(t, "bad-unknown-patient")), 422, "not-found", "Bundle.entry[0].resource.subject"},
-		{"contained patient missing", fhir.EndpointObservation, string(readGolden(t, "observation-bad-contained-missing")), 422, "not-found", "Observation.subject"},
-		{"subject not a Patient", fhir.EndpointObservation, `{"resourceType": "Observation", "status": "final", "code": {"coding": [{"system": "http://loinc.org", "code": "2160-0"}]}, "subject": {"reference": "Group/g1"}}`, 422, "invalid", "Observation.subject"},
+		{"malformed JSON", fhir.EndpointBundle, `{"resourceType": "Bundle",` + "\n" + `"type": }`, 400, "structure", "line 2, column 9", ""},
+		{"not an object", fhir.EndpointBundle, `[1, 2]`, 400, "structure", "", ""},
+		{"invalid UTF-8", fhir.EndpointBundle, "{\"resourceType\": \"Bundle\", \"type\": \"\xff\"}", 400, "structure", "", ""},
+		{"validation: decimal as string", fhir.EndpointBundle, string(readGolden(t, "bad-validation")), 400, "value", "Bundle.entry[0].resource.valueQuantity.value", ""},
+		{"validation: unknown element", fhir.EndpointBundle, string(readGolden(t, "bad-unknown-element")), 400, "structure", "specimenColour", ""},
+		{"validation: missing status", fhir.EndpointObservation, `{"resourceType": "Observation", "code": {"text": "creatinine"}}`, 400, "required", "Observation", ""},
+		{"wrong resourceType for [base]", fhir.EndpointBundle, string(readGolden(t, "bad-resource-type")), 400, "invalid", "resourceType", ""},
+		{"wrong resourceType for [base]/Observation", fhir.EndpointObservation, string(readGolden(t, "observation-bad-bundle")), 400, "invalid", "resourceType", ""},
+		{"no resourceType", fhir.EndpointBundle, `{"type": "batch"}`, 400, "required", "resourceType", ""},
+		{"unsupported Bundle type", fhir.EndpointBundle, string(readGolden(t, "bad-bundle-type")), 422, "not-supported", "Bundle.type", ""},
+		{"missing subject", fhir.EndpointBundle, string(readGolden(t, "bad-missing-subject")), 422, "required", "Bundle.entry[0].resource.subject", ""},
+		{"patient not in request, no source", fhir.EndpointBundle, string(readGolden(t, "bad-unknown-patient")), 422, "not-found", "Bundle.entry[0].resource.subject", ""},
+		{"contained patient missing", fhir.EndpointObservation, string(readGolden(t, "observation-bad-contained-missing")), 422, "not-found", "Observation.subject", ""},
+		{"patient without identifier", fhir.EndpointObservation, `{"resourceType": "Observation", "status": "final", "code": {"coding": [{"system": "http://loinc.org", "code": "2160-0"}]}, "subject": {"reference": "#p"}, "contained": [{"resourceType": "Patient", "id": "p", "gender": "female", "birthDate": "1974-01-15"}], "effectiveDateTime": "2024-06-03T07:45:00Z", "valueQuantity": {"value": 1.0, "code": "mg/dL"}}`, 422, "required", "Observation.contained[0].identifier", "Patient.identifier"},
+		{"subject not a Patient", fhir.EndpointObservation, `{"resourceType": "Observation", "status": "final", "code": {"coding": [{"system": "http://loinc.org", "code": "2160-0"}]}, "subject": {"reference": "Group/g1"}}`, 422, "invalid", "Observation.subject", ""},
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
@@ -546,6 +563,9 @@ func TestFHIRBadInput(t *testing.T) {
 			if tc.where != "" {
 				where := strings.Join(append(is.Expression, is.Location...), " ")
 				require.Contains(t, where, tc.where)
+			}
+			if tc.detail != "" {
+				require.Contains(t, string(p.Body), tc.detail)
 			}
 			require.Empty(t, e.records(t), "nothing may be recorded for a refused request")
 			require.Nil(t, p.Forwarded)
@@ -643,8 +663,8 @@ func TestFHIRDuplicate(t *testing.T) {
 	first := e.h.Handle(ctx, fhir.EndpointBundle, body)
 	require.Equal(t, http.StatusOK, first.Status)
 	require.False(t, first.Duplicate)
-	// The same Bundle.identifier with another body is the same message.
-	again := e.h.Handle(ctx, fhir.EndpointBundle, bytes.Replace(body, []byte(`"value": 178`), []byte(`"value": 179`), 1))
+	// The identical bytes again: the same message, nothing new.
+	again := e.h.Handle(ctx, fhir.EndpointBundle, body)
 	require.Equal(t, http.StatusOK, again.Status)
 	require.True(t, again.Duplicate)
 	require.Equal(t, first.RecordIDs, again.RecordIDs)
@@ -654,6 +674,18 @@ func TestFHIRDuplicate(t *testing.T) {
 	require.NoError(t, err)
 	require.Len(t, pending, 1)
 	require.EqualValues(t, 1, pending[0].Pending)
+
+	// The same Bundle.identifier with other content (a sender reusing
+	// identifiers) is a new message: recorded and forwarded, never
+	// dropped as a duplicate.
+	other := e.h.Handle(ctx, fhir.EndpointBundle, bytes.Replace(body, []byte(`"value": 1.4`), []byte(`"value": 1.5`), 1))
+	require.Equal(t, http.StatusOK, other.Status)
+	require.False(t, other.Duplicate)
+	require.NotEqual(t, first.RecordIDs, other.RecordIDs)
+	require.Len(t, e.records(t), 2)
+	pending, err = e.st.OutboxStats(ctx)
+	require.NoError(t, err)
+	require.EqualValues(t, 2, pending[0].Pending)
 }
 
 // patientServer is a fake patient source serving one invented Patient.
@@ -957,4 +989,390 @@ func TestFHIRNothingToCalculate(t *testing.T) {
 	require.Empty(t, e.records(t))
 	validateAll(t, e.codec, p.Forwarded)
 	require.Contains(t, string(p.Forwarded), `"code":"2951-2"`)
+}
+
+// Withdrawals: which earlier eGFRs a deleted, wrong, cancelled or corrected
+// input withdraws (DESIGN.md, clinical safety rules: corrected results
+// produce a corrected eGFR; cancelled results cancel it), over HL7 v2 and
+// FHIR. The patients, orders and values are invented; the tests check
+// identity and status, not eGFR values (package calc checks those).
+
+func withPolicy(name string, sexUnknown calc.SexRule) option {
+	return func(e *env) {
+		pol, err := calc.Preset(name)
+		if err != nil {
+			panic(err)
+		}
+		if sexUnknown != "" {
+			pol.SexUnknown = sexUnknown
+		}
+		e.state.Snapshot = &pipeline.Snapshot{Policy: pol, ConfigHash: testHash}
+	}
+}
+
+// oruWith builds an ORU^R01 for the invented patient NVL-900001 (PID-8
+// sex, PID-7 born 1970-03-10), collected 2024-06-03 08:00 (54 years old),
+// with the given OBX segments.
+func oruWith(control, sex string, obx ...string) []byte {
+	lines := append([]string{
+		`MSH|^~\&|NVLAB|NVL|EHR|NVH|20240603093000||ORU^R01^ORU_R01|` + control + `|P|2.5.1`,
+		`PID|1||NVL-900001^^^NVL^MR||Whitlock^Pell||19700310|` + sex,
+		`OBR|1|ORD9001|NVL9001|RENAL^Renal^L|||20240603080000`,
+	}, obx...)
+	return []byte(strings.Join(lines, "\r") + "\r")
+}
+
+const (
+	obxCreatinine = `OBX|1|NM|2160-0^Creatinine^LN||1.0|mg/dL|||||%s|||20240603080000`
+	obxCystatinC  = `OBX|2|NM|33863-2^Cystatin C^LN||1.0|mg/L|||||%s|||20240603080000`
+)
+
+// egfrRow is an eGFR OBX as Enrich writes it (OBX-17 names the equation).
+type egfrRow struct {
+	Code, SubID, Value, Status, Equation, Note string
+}
+
+func egfrRows(t *testing.T, enriched []byte) []egfrRow {
+	t.Helper()
+	m, err := hl7v2.Parse(enriched)
+	require.NoError(t, err)
+	var rows []egfrRow
+	segs := m.Segments()
+	for i, s := range segs {
+		if s.Name() != "OBX" || s.Field(17).Component(1).String() == "" {
+			continue
+		}
+		r := egfrRow{Code: s.Field(3).Component(1).String(), SubID: s.Field(4).String(), Value: s.Field(5).String(),
+			Status: s.Field(11).String(), Equation: s.Field(17).Component(1).String()}
+		if i+1 < len(segs) && segs[i+1].Name() == "NTE" {
+			r.Note = segs[i+1].Field(3).String()
+		}
+		rows = append(rows, r)
+	}
+	return rows
+}
+
+// withdrawn keeps the rows without a value, with code, sub-ID and status.
+func withdrawn(rows []egfrRow) []egfrRow {
+	var out []egfrRow
+	for _, r := range rows {
+		if r.Value == "" {
+			out = append(out, egfrRow{Code: r.Code, SubID: r.SubID, Status: r.Status, Equation: r.Equation})
+		}
+	}
+	return out
+}
+
+// LOINC 69405-9: generic eGFR code, used for EKFC and CKiD U25 (no
+// equation-specific code; calc.GenericLOINC). LOINC 98979-8: CKD-EPI 2021
+// creatinine (as in package calc).
+const (
+	loincGeneric = "69405-9"
+	loincCr2021  = "98979-8"
+)
+
+func TestHL7Withdrawals(t *testing.T) {
+	ctx := context.Background()
+	f := fmt.Sprintf
+
+	t.Run("EKFC: results share LOINC 69405-9 and are told apart by OBX-4", func(t *testing.T) {
+		e := newEnv(t, withPolicy("ekfc", ""))
+		p := e.hl7.Handle(ctx, oruWith("W1", "F", f(obxCreatinine, "F"), f(obxCystatinC, "F")))
+		require.Equal(t, "AA", p.Code, p.Err)
+		rows := egfrRows(t, p.Enriched)
+		var got []egfrRow
+		for _, r := range rows {
+			got = append(got, egfrRow{Code: r.Code, SubID: r.SubID, Status: r.Status, Equation: r.Equation})
+			require.NotEmpty(t, r.Value)
+		}
+		require.Equal(t, []egfrRow{
+			{Code: loincGeneric, SubID: "ekfc-cr", Status: "F", Equation: "ekfc-cr"},
+			{Code: loincGeneric, SubID: "ekfc-cys", Status: "F", Equation: "ekfc-cys"},
+			{Code: loincGeneric, SubID: "ekfc-crcys", Status: "F", Equation: "ekfc-crcys"},
+		}, got)
+
+		// The same order again with the cystatin C posted as wrong.
+		p = e.hl7.Handle(ctx, oruWith("W2", "F", f(obxCreatinine, "F"), f(obxCystatinC, "W")))
+		require.Equal(t, "AA", p.Code, p.Err)
+		rows = egfrRows(t, p.Enriched)
+		require.Equal(t, "ekfc-cr", rows[0].SubID)
+		require.NotEmpty(t, rows[0].Value, "the creatinine eGFR is reported again")
+		require.Equal(t, []egfrRow{
+			{Code: loincGeneric, SubID: "ekfc-cys", Status: "W", Equation: "ekfc-cys"},
+			{Code: loincGeneric, SubID: "ekfc-crcys", Status: "W", Equation: "ekfc-crcys"},
+		}, withdrawn(rows))
+		for _, r := range rows[1:] {
+			require.Equal(t, "eGFR withdrawn: the result it was calculated from was reported in error.", r.Note)
+		}
+		require.NotContains(t, string(p.Enriched), "ckid-u25")
+	})
+
+	t.Run("sex unknown, policy both: both variants, both withdrawn", func(t *testing.T) {
+		e := newEnv(t, withPolicy("nkf-asn-2021", calc.SexRuleBoth))
+		p := e.hl7.Handle(ctx, oruWith("S1", "U", f(obxCreatinine, "F")))
+		require.Equal(t, "AA", p.Code, p.Err)
+		rows := egfrRows(t, p.Enriched)
+		require.Len(t, rows, 2)
+		require.Equal(t, []string{"ckd-epi-2021-cr.F", "ckd-epi-2021-cr.M"}, []string{rows[0].SubID, rows[1].SubID})
+
+		p = e.hl7.Handle(ctx, oruWith("S2", "U", f(obxCreatinine, "D")))
+		require.Equal(t, "AA", p.Code, p.Err)
+		require.Equal(t, []egfrRow{
+			{Code: loincCr2021, SubID: "ckd-epi-2021-cr.F", Status: "D", Equation: "ckd-epi-2021-cr"},
+			{Code: loincCr2021, SubID: "ckd-epi-2021-cr.M", Status: "D", Equation: "ckd-epi-2021-cr"},
+		}, withdrawn(egfrRows(t, p.Enriched)))
+		require.Len(t, egfrRows(t, p.Enriched), 2, "nothing but the two withdrawals")
+	})
+
+	t.Run("corrected to a value that gives no eGFR, then cancelled", func(t *testing.T) {
+		e := newEnv(t, withPolicy("nkf-asn-2021", ""))
+		p := e.hl7.Handle(ctx, oruWith("C1", "F", f(obxCreatinine, "F")))
+		require.Equal(t, "AA", p.Code, p.Err)
+		require.Equal(t, "ckd-epi-2021-cr", egfrRows(t, p.Enriched)[0].SubID)
+
+		corrected := strings.Replace(f(obxCreatinine, "C"), "|NM|", "|ST|", 1)
+		corrected = strings.Replace(corrected, "||1.0|", "||haemolysed|", 1)
+		p = e.hl7.Handle(ctx, oruWith("C2", "F", corrected))
+		require.Equal(t, "AA", p.Code, p.Err)
+		// Only the creatinine eGFR can have been sent: the order reports no
+		// cystatin C and no timed urine.
+		require.Equal(t, []egfrRow{{Code: loincCr2021, SubID: "ckd-epi-2021-cr", Status: "D", Equation: "ckd-epi-2021-cr"}},
+			withdrawn(egfrRows(t, p.Enriched)))
+		require.Equal(t, "eGFR withdrawn: the corrected result it was calculated from no longer gives this eGFR.", egfrRows(t, p.Enriched)[0].Note)
+		require.Contains(t, string(p.Enriched), "\rNTE|1|L|"+calc.ReasonValueNotNumeric.Describe()+"\r", "the refusal note stays")
+		// The refusal note sits on the corrected OBX, before the withdrawal.
+		require.Less(t, strings.Index(string(p.Enriched), calc.ReasonValueNotNumeric.Describe()), strings.Index(string(p.Enriched), "|D|||20240603080000|||ckd-epi-2021-cr"))
+
+		p = e.hl7.Handle(ctx, oruWith("C3", "F", strings.Replace(f(obxCreatinine, "X"), "||1.0|", "|||", 1)))
+		require.Equal(t, "AA", p.Code, p.Err)
+		require.Equal(t, []egfrRow{{Code: loincCr2021, SubID: "ckd-epi-2021-cr", Status: "X", Equation: "ckd-epi-2021-cr"}},
+			withdrawn(egfrRows(t, p.Enriched)))
+		recs, err := e.st.Search(ctx, store.Filter{MessageID: "C3"})
+		require.NoError(t, err)
+		require.Len(t, recs, 1, "the cancelled input is recorded")
+		require.Equal(t, pipeline.ReasonWithdrawn, recs[0].SuppressionCode)
+	})
+
+	t.Run("age unknown: the equations of every band", func(t *testing.T) {
+		e := newEnv(t, withPolicy("ekfc", ""))
+		msg := strings.Replace(string(oruWith("A1", "F", f(obxCreatinine, "D"))), "||19700310|", "|||", 1)
+		p := e.hl7.Handle(ctx, []byte(msg))
+		require.Equal(t, "AA", p.Code, p.Err)
+		// The ekfc preset: CKiD U25 from 1 to 2 years, EKFC from 2.
+		require.Equal(t, []egfrRow{
+			{Code: loincGeneric, SubID: "ckid-u25-cr", Status: "D", Equation: "ckid-u25-cr"},
+			{Code: loincGeneric, SubID: "ekfc-cr", Status: "D", Equation: "ekfc-cr"},
+		}, withdrawn(egfrRows(t, p.Enriched)))
+	})
+
+	t.Run("both inputs deleted: each eGFR withdrawn once", func(t *testing.T) {
+		e := newEnv(t, withPolicy("ekfc", ""))
+		p := e.hl7.Handle(ctx, oruWith("B1", "F", f(obxCreatinine, "D"), f(obxCystatinC, "W")))
+		require.Equal(t, "AA", p.Code, p.Err)
+		require.Equal(t, []egfrRow{
+			{Code: loincGeneric, SubID: "ekfc-cr", Status: "D", Equation: "ekfc-cr"},
+			{Code: loincGeneric, SubID: "ekfc-crcys", Status: "W", Equation: "ekfc-crcys"}, // for the later input
+			{Code: loincGeneric, SubID: "ekfc-cys", Status: "W", Equation: "ekfc-cys"},
+		}, withdrawn(egfrRows(t, p.Enriched)))
+	})
+
+	t.Run("a corrected value that still gives an eGFR withdraws nothing", func(t *testing.T) {
+		e := newEnv(t, withPolicy("nkf-asn-2021", ""))
+		p := e.hl7.Handle(ctx, oruWith("K1", "F", strings.Replace(f(obxCreatinine, "C"), "||1.0|", "||1.1|", 1)))
+		require.Equal(t, "AA", p.Code, p.Err)
+		rows := egfrRows(t, p.Enriched)
+		require.Len(t, rows, 1)
+		require.Equal(t, egfrRow{Code: loincCr2021, SubID: "ckd-epi-2021-cr", Status: "C", Equation: "ckd-epi-2021-cr"},
+			egfrRow{Code: rows[0].Code, SubID: rows[0].SubID, Status: rows[0].Status, Equation: rows[0].Equation})
+		require.Empty(t, withdrawn(rows))
+	})
+}
+
+// fhirObs is an input Observation of fhirBundle: LOINC code, status and
+// value (a JSON number for valueQuantity, a quoted string for valueString,
+// empty for none).
+type fhirObs struct{ id, code, status, value, unit string }
+
+// fhirBundle builds a collection Bundle for the invented patient
+// NVL-900002, collected at effective.
+func fhirBundle(identifier, gender, birthDate, effective string, obs ...fhirObs) []byte {
+	var b strings.Builder
+	b.WriteString(`{"resourceType": "Bundle", "type": "collection",
+	  "identifier": {"system": "https://northfield-valley-lab.example/lis/bundle", "value": "` + identifier + `"},
+	  "entry": [{"fullUrl": "urn:uuid:00000000-0000-4000-8000-000000000e01", "resource": {"resourceType": "Patient",
+	    "identifier": [{"system": "https://northfield-valley-lab.example/mrn", "value": "NVL-900002"}],
+	    "gender": "` + gender + `", "birthDate": "` + birthDate + `"}}`)
+	for _, o := range obs {
+		value := ""
+		switch {
+		case strings.HasPrefix(o.value, `"`):
+			value = `, "valueString": ` + o.value
+		case o.value != "":
+			value = `, "valueQuantity": {"value": ` + o.value + `, "unit": "` + o.unit + `", "system": "http://unitsofmeasure.org", "code": "` + o.unit + `"}`
+		}
+		b.WriteString(`, {"resource": {"resourceType": "Observation", "id": "` + o.id + `", "status": "` + o.status + `",
+		  "code": {"coding": [{"system": "http://loinc.org", "code": "` + o.code + `"}]},
+		  "subject": {"reference": "urn:uuid:00000000-0000-4000-8000-000000000e01"},
+		  "effectiveDateTime": "` + effective + `"` + value + `}}`)
+	}
+	b.WriteString(`]}`)
+	return []byte(b.String())
+}
+
+// egfrObs is an eGFR Observation of an answer.
+type egfrObs struct {
+	ID, Status, Equation, Code, Text string
+	HasValue                         bool
+}
+
+func egfrObservations(t *testing.T, body []byte) []egfrObs {
+	t.Helper()
+	var b struct {
+		Entry []struct {
+			Resource struct {
+				ResourceType, ID, Status string
+				Code                     struct {
+					Coding []struct{ Code string }
+					Text   string
+				}
+				Method struct {
+					Coding []struct{ Code string }
+				}
+				ValueQuantity json.RawMessage
+			}
+		}
+	}
+	require.NoError(t, json.Unmarshal(body, &b))
+	var out []egfrObs
+	for _, e := range b.Entry {
+		r := e.Resource
+		if r.ResourceType != "Observation" || len(r.Method.Coding) == 0 {
+			continue
+		}
+		out = append(out, egfrObs{ID: r.ID, Status: r.Status, Equation: r.Method.Coding[0].Code, Code: r.Code.Coding[0].Code,
+			Text: r.Code.Text, HasValue: len(r.ValueQuantity) > 0})
+	}
+	return out
+}
+
+func byEquation(obs []egfrObs) map[string]egfrObs {
+	m := map[string]egfrObs{}
+	for _, o := range obs {
+		m[o.Equation+"|"+o.Text] = o
+	}
+	return m
+}
+
+func TestFHIRWithdrawals(t *testing.T) {
+	ctx := context.Background()
+	const at = "2024-06-03T08:00:00Z"
+	cr := func(status, value string) fhirObs { return fhirObs{"nvl-o-cr", "2160-0", status, value, "mg/dL"} }
+	cys := func(status, value string) fhirObs { return fhirObs{"nvl-o-cys", "33863-2", status, value, "mg/L"} }
+
+	t.Run("EKFC: cystatin C entered in error withdraws exactly its eGFRs, by id", func(t *testing.T) {
+		e := newEnv(t, withPolicy("ekfc", ""))
+		p := e.h.Handle(ctx, fhir.EndpointBundle, fhirBundle("B1", "female", "1970-03-10", at, cr("final", "1.0"), cys("final", "1.0")))
+		require.Equal(t, http.StatusOK, p.Status, string(p.Body))
+		first := egfrObservations(t, p.Body)
+		require.Len(t, first, 3)
+		ids := map[string]string{}
+		for _, o := range first {
+			require.Equal(t, loincGeneric, o.Code)
+			require.True(t, o.HasValue)
+			ids[o.Equation] = o.ID
+		}
+		require.Len(t, ids, 3)
+
+		p = e.h.Handle(ctx, fhir.EndpointBundle, fhirBundle("B2", "female", "1970-03-10", at, cr("final", "1.0"), cys("entered-in-error", "1.0")))
+		require.Equal(t, http.StatusOK, p.Status, string(p.Body))
+		validateAll(t, e.codec, p.Body)
+		second := egfrObservations(t, p.Body)
+		require.ElementsMatch(t, []egfrObs{
+			{ID: ids["ekfc-cr"], Status: "final", Equation: "ekfc-cr", Code: loincGeneric, Text: "eGFR (EKFC creatinine)", HasValue: true},
+			{ID: ids["ekfc-cys"], Status: "entered-in-error", Equation: "ekfc-cys", Code: loincGeneric, Text: "eGFR (EKFC cystatin C)"},
+			{ID: ids["ekfc-crcys"], Status: "entered-in-error", Equation: "ekfc-crcys", Code: loincGeneric, Text: "eGFR (EKFC creatinine–cystatin C (mean))"},
+		}, second)
+	})
+
+	t.Run("sex unknown, policy both: the withdrawals address both results", func(t *testing.T) {
+		e := newEnv(t, withPolicy("nkf-asn-2021", calc.SexRuleBoth))
+		p := e.h.Handle(ctx, fhir.EndpointBundle, fhirBundle("S1", "unknown", "1970-03-10", at, cr("final", "1.0")))
+		require.Equal(t, http.StatusOK, p.Status, string(p.Body))
+		results := egfrObservations(t, p.Body)
+		require.Len(t, results, 2)
+		require.NotEqual(t, results[0].ID, results[1].ID)
+
+		p = e.h.Handle(ctx, fhir.EndpointBundle, fhirBundle("S2", "unknown", "1970-03-10", at, cr("entered-in-error", "1.0")))
+		require.Equal(t, http.StatusOK, p.Status, string(p.Body))
+		validateAll(t, e.codec, p.Body)
+		withdrawals := byEquation(egfrObservations(t, p.Body))
+		require.Len(t, withdrawals, 2)
+		for _, r := range results {
+			w, ok := withdrawals[r.Equation+"|"+r.Text]
+			require.True(t, ok, r.Text)
+			require.Equal(t, r.ID, w.ID, "the withdrawal has the id of the result it withdraws")
+			require.Equal(t, "entered-in-error", w.Status)
+			require.False(t, w.HasValue)
+		}
+	})
+
+	t.Run("corrected to a value that gives no eGFR, then cancelled", func(t *testing.T) {
+		e := newEnv(t, withPolicy("nkf-asn-2021", ""), forwarding)
+		p := e.h.Handle(ctx, fhir.EndpointBundle, fhirBundle("C1", "female", "1970-03-10", at, cr("final", "1.0")))
+		require.Equal(t, http.StatusOK, p.Status, string(p.Body))
+		results := egfrObservations(t, p.Body)
+		require.Len(t, results, 1)
+		require.Equal(t, loincCr2021, results[0].Code)
+
+		p = e.h.Handle(ctx, fhir.EndpointBundle, fhirBundle("C2", "female", "1970-03-10", at, cr("corrected", `"haemolysed"`)))
+		require.Equal(t, http.StatusOK, p.Status, string(p.Body))
+		validateAll(t, e.codec, p.Body)
+		validateAll(t, e.codec, p.Forwarded)
+		require.Equal(t, []egfrObs{{ID: results[0].ID, Status: "entered-in-error", Equation: "ckd-epi-2021-cr", Code: loincCr2021,
+			Text: results[0].Text}}, egfrObservations(t, p.Body))
+		require.Contains(t, string(p.Body), "no longer gives this eGFR")
+		require.Contains(t, string(p.Body), string(calc.ReasonValueNotNumeric), "the refusal is reported")
+		require.Contains(t, string(p.Forwarded), `"url":"Observation/`+results[0].ID+`"`, "forwarded as PUT to the same id")
+
+		p = e.h.Handle(ctx, fhir.EndpointBundle, fhirBundle("C3", "female", "1970-03-10", at, cr("cancelled", "")))
+		require.Equal(t, http.StatusOK, p.Status, string(p.Body))
+		validateAll(t, e.codec, p.Body)
+		require.Equal(t, []egfrObs{{ID: results[0].ID, Status: "cancelled", Equation: "ckd-epi-2021-cr", Code: loincCr2021,
+			Text: results[0].Text}}, egfrObservations(t, p.Body))
+	})
+}
+
+// TestFHIRCollectionTimeInLaboratoryZone: age counts from the calendar
+// date of collection at the laboratory. Born 2006-03-16, collected
+// 2024-03-16T01:00Z, which is 15 March 21:00 in New York (UTC−4 under US
+// daylight saving time from 10 March 2024: common knowledge): 17 years
+// old, so the adult equation must not be used, and CKiD U25 (Pierce 2021,
+// children 1–17 in the nkf-asn-2021 preset) needs height, which is absent.
+func TestFHIRCollectionTimeInLaboratoryZone(t *testing.T) {
+	ny, err := time.LoadLocation("America/New_York")
+	require.NoError(t, err)
+	body := fhirBundle("T1", "male", "2006-03-16", "2024-03-16T01:00:00Z", fhirObs{"nvl-o-tz", "2160-0", "final", "0.9", "mg/dL"})
+	cases := []struct {
+		loc      *time.Location
+		equation string // of the audit record
+		code     string // its suppression code
+	}{
+		{ny, "ckid-u25-cr", string(calc.ReasonHeightMissing)},
+		{time.UTC, "ckd-epi-2021-cr", ""}, // 16 March in UTC: 18, an adult
+	}
+	for _, tc := range cases {
+		t.Run(tc.loc.String(), func(t *testing.T) {
+			e := newEnv(t)
+			e.state.Location = tc.loc
+			p := e.h.Handle(context.Background(), fhir.EndpointBundle, body)
+			require.Equal(t, http.StatusOK, p.Status, string(p.Body))
+			recs := e.records(t)
+			require.Len(t, recs, 1)
+			require.Equal(t, tc.equation, recs[0].Equation)
+			require.Equal(t, tc.code, recs[0].SuppressionCode)
+			if tc.code != "" {
+				require.Empty(t, egfrObservations(t, p.Body))
+			}
+		})
+	}
 }

@@ -107,7 +107,7 @@ func (h *HL7) Handle(ctx context.Context, payload []byte) (p Processed) {
 		o := e.Outcome
 		outcomes[index[i]] = &o
 	}
-	enriched, err := oru.Enrich(outcomes, hl7v2.EnrichOptions{Retractions: st.Retractions})
+	enriched, err := oru.Enrich(outcomes, hl7v2.EnrichOptions{Withdrawals: hl7Withdrawals(st, oru, evals, index)})
 	if err != nil {
 		h.logger().Error("hl7v2 enrichment failed", "err", err)
 		return h.refuse(msg, hl7v2.AckError, hl7v2.ErrorDetail{Code: hl7v2.ErrCodeApplication, Text: "internal error while adding eGFR; resend later"}, err)
@@ -156,7 +156,9 @@ func neutral(oru *hl7v2.ORU, raw []byte) (pipeline.Message, []int) {
 		for _, obx := range ord.Observations {
 			switch obx.Analyte {
 			case calc.Creatinine, calc.CystatinC, calc.UrineCreatinine:
-				if hl7v2.ClassifyStatus(obx.Status) == hl7v2.StatusRetract {
+				// Deleted, wrong (D, W) and cancelled (X) inputs withdraw
+				// the eGFRs derived from them (see planWithdrawals).
+				if a := hl7v2.ClassifyStatus(obx.Status); a == hl7v2.StatusRetract || a == hl7v2.StatusCancel {
 					g.Withdrawn = append(g.Withdrawn, pipeline.Withdrawal{SourceID: obx.SourceID, Analyte: obx.Analyte, Status: obx.Status})
 				}
 			}

@@ -7,10 +7,12 @@ package ingest
 
 import (
 	"fmt"
+	"slices"
 	"time"
 
 	"filtrate/calc"
 	"filtrate/config"
+	"filtrate/fhir"
 	"filtrate/hl7v2"
 	"filtrate/internal/pipeline"
 )
@@ -23,9 +25,13 @@ type State struct {
 	Codes *hl7v2.CodeMap
 	// Location is the zone of HL7 v2 times sent without a UTC offset.
 	Location *time.Location
-	// Retractions are the eGFR observations the policy can report, used to
-	// withdraw them when an input is deleted or posted as wrong.
-	Retractions []calc.Result
+	// Equations is the registry the withdrawal rules read equation names,
+	// units, LOINC codes and sex dependence from; nil means
+	// calc.Builtin().
+	Equations *calc.Registry
+	// Outputs are the eGFR observations the policy can report, listed in
+	// the FHIR CapabilityStatement.
+	Outputs []calc.Result
 	// ForwardHL7 and ForwardFHIR tell whether enriched messages go
 	// downstream (an outbox item per message) for each transport.
 	ForwardHL7  bool
@@ -38,14 +44,15 @@ const (
 	DestinationFHIR = "fhir"
 )
 
-// RetractionTemplates lists, for a policy, one template per eGFR
-// observation it can report (by equation), for hl7v2.EnrichOptions.
-func RetractionTemplates(p calc.Policy, reg *calc.Registry) []calc.Result {
+// OutputTemplates lists, for a policy, one template per eGFR observation
+// it can report (by equation): equation, name, unit, the analytes used and
+// the LOINC code as calc assigns it.
+func OutputTemplates(p calc.Policy, reg *calc.Registry) []calc.Result {
 	seen := map[string]bool{}
 	var out []calc.Result
 	for _, b := range p.Bands {
-		for _, id := range append([]string{b.Creatinine, b.CystatinC, b.Combined}, b.Extra...) {
-			if id == "" || seen[id] {
+		for _, id := range bandEquations(b) {
+			if seen[id] {
 				continue
 			}
 			e, ok := reg.Latest(id)
@@ -53,17 +60,36 @@ func RetractionTemplates(p calc.Policy, reg *calc.Registry) []calc.Result {
 				continue
 			}
 			seen[id] = true
-			r := calc.Result{Equation: e.ID, EquationName: e.Name, Unit: e.Unit, Uses: e.Uses(), LOINC: e.LOINC, LOINCName: e.LOINCName}
-			if c, ok := p.LOINC[e.ID]; ok && c != "" {
-				r.LOINC = c
-			}
-			if r.LOINC == "" {
-				r.LOINC, r.LOINCName = p.GenericLOINC, p.GenericLOINCName
-			}
+			r := calc.Result{Equation: e.ID, EquationName: e.Name, Unit: e.Unit, Uses: e.Uses()}
+			r.LOINC, r.LOINCName = loincOf(p, e)
 			out = append(out, r)
 		}
 	}
 	return out
+}
+
+// bandEquations lists the equation IDs a band may report.
+func bandEquations(b calc.Band) []string {
+	var ids []string
+	for _, id := range append([]string{b.Creatinine, b.CystatinC, b.Combined}, b.Extra...) {
+		if id != "" {
+			ids = append(ids, id)
+		}
+	}
+	return ids
+}
+
+// loincOf is the output code of an equation under a policy, chosen as
+// calc chooses it: the policy's override (named with the equation's name),
+// else the equation's own code, else the policy's generic code.
+func loincOf(p calc.Policy, e calc.Equation) (code, name string) {
+	if c, ok := p.LOINC[e.ID]; ok && c != "" {
+		return c, e.Name
+	}
+	if e.LOINC != "" {
+		return e.LOINC, e.LOINCName
+	}
+	return p.GenericLOINC, p.GenericLOINCName
 }
 
 // StateFromConfig derives everything a message is processed under from a
@@ -85,7 +111,8 @@ func StateFromConfig(cfg *config.Config, reg *calc.Registry) (*State, error) {
 		Snapshot:    &pipeline.Snapshot{Policy: pol, Calibrations: cfg.Calibrations(), ConfigHash: cfg.Hash()},
 		Codes:       codes,
 		Location:    loc,
-		Retractions: RetractionTemplates(pol, reg),
+		Equations:   reg,
+		Outputs:     OutputTemplates(pol, reg),
 		ForwardHL7:  cfg.HL7v2.Forward != "",
 		ForwardFHIR: cfg.FHIR.Forward != "",
 	}, nil
@@ -103,4 +130,225 @@ func CodeMap(cfg *config.Config) (*hl7v2.CodeMap, error) {
 		return nil, fmt.Errorf("analytes: %w", err)
 	}
 	return m, nil
+}
+
+// Withdrawing eGFRs.
+//
+// An eGFR sent earlier must not stay on the chart once the result it was
+// calculated from is withdrawn, cancelled or corrected into a value that
+// gives no eGFR (DESIGN.md, clinical safety rules: corrected results
+// produce a corrected eGFR; cancelled results cancel it). Which eGFRs are
+// withdrawn, and with which status, is decided here for both transports;
+// hl7v2 and fhir only write the decision.
+//
+// For each creatinine, cystatin C or urine creatinine input of a group:
+//
+//   - Deleted or wrong (HL7 v2.5.1 table 0085: D deletes the OBX record,
+//     W post original as wrong; FHIR R4 ObservationStatus
+//     entered-in-error): each eGFR that can derive from it is withdrawn
+//     with the same status.
+//   - Cancelled (table 0085 X, results cannot be obtained for this
+//     observation; FHIR cancelled, the observation is unavailable): each
+//     such eGFR is withdrawn with status X, or cancelled.
+//   - Corrected (table 0085 C, record coming over is a correction and thus
+//     replaces a final result; FHIR corrected or amended): each such eGFR
+//     for which the outcome now has no result is withdrawn with status D
+//     (deletes the OBX record), or entered-in-error, since the earlier
+//     value must not stand; the refusal saying why is written as usual.
+//
+// The eGFRs that can derive from an input are those of the policy band at
+// the patient's age as calc computed it (every band when the age is
+// unknown) whose equation uses the input's analyte and whose every analyte
+// the group reports in some status (otherwise that eGFR can never have
+// been sent). A sex-dependent equation, for a patient whose sex is unknown
+// under the policy "both", is withdrawn as calculated as if female and as
+// if male; otherwise as one value. An eGFR the outcome reports again is
+// never withdrawn: the new value replaces it. When two inputs withdraw the
+// same eGFR (creatinine and cystatin C both deleted), it is withdrawn once:
+// for the input's own withdrawal or cancellation rather than for a
+// correction, and otherwise for the later input.
+
+// inputState is what an input's status means for eGFRs derived from it.
+type inputState int
+
+const (
+	inputOther     inputState = iota
+	inputWithdrawn            // HL7 D or W; FHIR entered-in-error
+	inputCancelled            // HL7 X; FHIR cancelled
+	inputCorrected            // HL7 C; FHIR corrected or amended
+)
+
+// groupInput is a creatinine, cystatin C or urine creatinine input of a
+// group, in any status.
+type groupInput struct {
+	SourceID string
+	Analyte  calc.Analyte
+	State    inputState
+	// Status is the transport's status code for the withdrawals this
+	// input causes (unused for inputOther).
+	Status string
+}
+
+// withdrawal is one eGFR to withdraw, in neutral form.
+type withdrawal struct {
+	SourceID, Equation, EquationName, LOINC, LOINCName, Unit, AssumedSex, Status string
+}
+
+// primaryAnalyte reports the analytes an eGFR is calculated from.
+func primaryAnalyte(a calc.Analyte) bool {
+	return a == calc.Creatinine || a == calc.CystatinC || a == calc.UrineCreatinine
+}
+
+func (st *State) registry() *calc.Registry {
+	if st.Equations != nil {
+		return st.Equations
+	}
+	return calc.Builtin()
+}
+
+// planWithdrawals applies the withdrawal rules to one evaluated group: req
+// is the request as evaluated (policy and sex), out its outcome, inputs
+// the group's inputs in message order.
+func planWithdrawals(reg *calc.Registry, req calc.Request, out calc.Outcome, inputs []groupInput) []withdrawal {
+	pol := req.Policy
+	bands := pol.Bands
+	if out.AgeYears != nil {
+		bands = nil
+		if b, ok := pol.BandFor(*out.AgeYears); ok {
+			bands = []calc.Band{b}
+		}
+	}
+	var eqs []calc.Equation
+	seen := map[string]bool{}
+	for _, b := range bands {
+		for _, id := range bandEquations(b) {
+			if seen[id] {
+				continue
+			}
+			seen[id] = true
+			if e, ok := reg.Latest(id); ok {
+				eqs = append(eqs, e)
+			}
+		}
+	}
+	reported := map[calc.Analyte]bool{}
+	for _, in := range inputs {
+		reported[in.Analyte] = true
+	}
+	type key struct{ equation, sex string }
+	computed := map[key]bool{}
+	for _, r := range out.Results {
+		computed[key{r.Equation, r.AssumedSex}] = true
+	}
+	plan := map[key]withdrawal{}
+	corrective := map[key]bool{} // planned for a correction only
+	var order []key
+	for _, in := range inputs {
+		if in.State == inputOther {
+			continue
+		}
+		for _, e := range eqs {
+			uses := e.Uses()
+			if !slices.Contains(uses, in.Analyte) || !allReported(uses, reported) {
+				continue
+			}
+			sexes := []string{""}
+			if e.Needs.Has(calc.NeedSex) && req.Sex == calc.SexUnknown && pol.SexUnknown == calc.SexRuleBoth {
+				sexes = []string{calc.SexFemale.String(), calc.SexMale.String()}
+			}
+			for _, sex := range sexes {
+				k := key{e.ID, sex}
+				if computed[k] {
+					continue
+				}
+				_, planned := plan[k]
+				if planned && in.State == inputCorrected && !corrective[k] {
+					continue // the input's own withdrawal takes precedence
+				}
+				if !planned {
+					order = append(order, k)
+				}
+				code, name := loincOf(pol, e)
+				plan[k] = withdrawal{SourceID: in.SourceID, Equation: e.ID, EquationName: e.Name,
+					LOINC: code, LOINCName: name, Unit: e.Unit, AssumedSex: sex, Status: in.Status}
+				corrective[k] = in.State == inputCorrected
+			}
+		}
+	}
+	ws := make([]withdrawal, 0, len(order))
+	for _, k := range order {
+		ws = append(ws, plan[k])
+	}
+	return ws
+}
+
+func allReported(uses []calc.Analyte, reported map[calc.Analyte]bool) bool {
+	for _, a := range uses {
+		if !reported[a] {
+			return false
+		}
+	}
+	return true
+}
+
+// hl7Withdrawals returns, per order of the message, the eGFR observations
+// to withdraw (hl7v2.EnrichOptions.Withdrawals). index maps each
+// evaluated group to its order, as neutral returns it.
+func hl7Withdrawals(st *State, oru *hl7v2.ORU, evals []pipeline.Evaluated, index []int) [][]hl7v2.Withdrawal {
+	reg := st.registry()
+	out := make([][]hl7v2.Withdrawal, len(oru.Orders))
+	for i, e := range evals {
+		var inputs []groupInput
+		for _, obs := range oru.Orders[index[i]].Observations {
+			if !primaryAnalyte(obs.Analyte) {
+				continue
+			}
+			in := groupInput{SourceID: obs.SourceID, Analyte: obs.Analyte}
+			switch hl7v2.ClassifyStatus(obs.Status) {
+			case hl7v2.StatusRetract:
+				in.State, in.Status = inputWithdrawn, obs.Status
+			case hl7v2.StatusCancel:
+				in.State, in.Status = inputCancelled, "X"
+			case hl7v2.StatusCompute:
+				if obs.Status == "C" {
+					in.State, in.Status = inputCorrected, "D"
+				}
+			}
+			inputs = append(inputs, in)
+		}
+		for _, w := range planWithdrawals(reg, e.Request, e.Outcome, inputs) {
+			out[index[i]] = append(out[index[i]], hl7v2.Withdrawal(w))
+		}
+	}
+	return out
+}
+
+// fhirWithdrawals returns the eGFR Observations to withdraw for one group
+// (fhir.GroupResult.Withdrawals).
+func fhirWithdrawals(st *State, x *fhir.Extraction, g *fhir.Group, e pipeline.Evaluated) []fhir.Withdrawal {
+	mine := map[*fhir.Observation]bool{}
+	for _, o := range append(append([]*fhir.Observation(nil), g.Inputs...), g.Withdrawn...) {
+		mine[o] = true
+	}
+	var inputs []groupInput
+	for _, o := range x.Inputs { // request order
+		if !mine[o] || !primaryAnalyte(o.Analyte) {
+			continue
+		}
+		in := groupInput{SourceID: o.SourceID, Analyte: o.Analyte}
+		switch o.Status {
+		case "entered-in-error":
+			in.State, in.Status = inputWithdrawn, "entered-in-error"
+		case "cancelled":
+			in.State, in.Status = inputCancelled, "cancelled"
+		case "corrected", "amended":
+			in.State, in.Status = inputCorrected, "entered-in-error"
+		}
+		inputs = append(inputs, in)
+	}
+	var out []fhir.Withdrawal
+	for _, w := range planWithdrawals(st.registry(), e.Request, e.Outcome, inputs) {
+		out = append(out, fhir.Withdrawal(w))
+	}
+	return out
 }
