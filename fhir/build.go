@@ -616,6 +616,11 @@ func (c *Codec) Forward(x *Extraction, res []GroupResult, meta Meta) (id string,
 			be.Request = entryRequest(cpb.HTTPVerbCode_PUT, typ+"/"+rid)
 		default:
 			be.Request = entryRequest(cpb.HTTPVerbCode_POST, typ)
+			// A redelivery (after a lost acknowledgement) must not create
+			// the resource twice: conditional create on its identifier.
+			if sys, val := firstIdentifier(cr); val != "" {
+				be.Request.IfNoneExist = str("identifier=" + sys + "|" + val)
+			}
 			if be.FullUrl == nil {
 				be.FullUrl = uri("urn:uuid:" + uuidFrom(x.Request.DedupKey()+"\x00"+e.expr))
 			}
@@ -662,4 +667,21 @@ func resourceTypeID(cr *bcrpb.ContainedResource) (typ, id string) {
 		}
 	}
 	return typ, id
+}
+
+// firstIdentifier returns the system and value of the first identifier of a
+// Patient or Observation with a value.
+func firstIdentifier(cr *bcrpb.ContainedResource) (system, value string) {
+	var ids []*dpb.Identifier
+	if o := cr.GetObservation(); o != nil {
+		ids = o.GetIdentifier()
+	} else if p := cr.GetPatient(); p != nil {
+		ids = p.GetIdentifier()
+	}
+	for _, id := range ids {
+		if v := id.GetValue().GetValue(); v != "" {
+			return id.GetSystem().GetValue(), v
+		}
+	}
+	return "", ""
 }

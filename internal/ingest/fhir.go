@@ -150,9 +150,14 @@ func (h *FHIR) Handle(ctx context.Context, at fhir.Endpoint, body []byte) (p FHI
 			return h.fail(http.StatusInternalServerError, "exception", "internal error while adding eGFR; retry later", err)
 		}
 		forwarded = payload
-		partition := ""
-		if len(pm.Groups) > 0 {
-			partition = pm.Groups[0].PatientID
+		// Reports of one patient go out in order; a request with nothing
+		// to calculate (no patient group) is ordered with all such.
+		partition := "fhir:no-patient"
+		for _, g := range pm.Groups {
+			if g.PatientID != "" {
+				partition = g.PatientID
+				break
+			}
 		}
 		outs = append(outs, pipeline.Output{Destination: DestinationFHIR, PartitionKey: partition,
 			MessageID: id, ContentType: fhir.MediaType, Payload: payload})
@@ -512,6 +517,12 @@ func (s *FHIRSender) Send(ctx context.Context, it store.OutboxItem) (string, err
 		return fmt.Sprintf("HTTP %d %s", code, it.MessageID), nil
 	case code == http.StatusRequestTimeout || code == http.StatusTooManyRequests || code >= 500:
 		return "", fmt.Errorf("fhir forward: downstream answered HTTP %d", code)
+	case code == http.StatusUnauthorized || code == http.StatusForbidden || code == http.StatusNotFound ||
+		code == http.StatusMethodNotAllowed || code == http.StatusUnsupportedMediaType:
+		// These say the forwarding set-up is wrong (token, URL, server),
+		// not this message: retry, so that fixing the set-up delivers
+		// everything in order, and let the alerts show the failures.
+		return "", fmt.Errorf("fhir forward: downstream refused the connection set-up (HTTP %d): check fhir.forward and its token", code)
 	case code >= 400:
 		return "", &forward.RejectedError{Reason: fmt.Sprintf("HTTP %d", code)}
 	default:

@@ -891,14 +891,19 @@ func TestFHIRSender(t *testing.T) {
 		status int
 		want   string // ok, retry, park
 	}{
-		{200, "ok"}, {201, "ok"}, {400, "park"}, {401, "park"}, {404, "park"}, {409, "park"}, {422, "park"},
+		{200, "ok"}, {201, "ok"}, {400, "park"}, {409, "park"}, {422, "park"},
 		{408, "retry"}, {429, "retry"}, {500, "retry"}, {502, "retry"}, {503, "retry"},
+		// A refused set-up (token, URL, server) is not this message's
+		// fault: retried until fixed, in order, instead of parking all.
+		{401, "retry"}, {403, "retry"}, {404, "retry"}, {405, "retry"}, {415, "retry"},
+		// A redirect is not delivery (the client must not follow it).
+		{301, "retry"}, {302, "retry"}, {307, "retry"},
 	}
 	for _, tc := range cases {
 		t.Run(fmt.Sprint(tc.status), func(t *testing.T) {
 			srv := httptest.NewServer(http.HandlerFunc(func(w http.ResponseWriter, _ *http.Request) { w.WriteHeader(tc.status) }))
 			defer srv.Close()
-			s := &ingest.FHIRSender{Base: srv.URL}
+			s := &ingest.FHIRSender{Base: srv.URL, Client: &http.Client{CheckRedirect: func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }}}
 			_, err := s.Send(context.Background(), store.OutboxItem{OutboxMessage: store.OutboxMessage{Payload: []byte(`{}`), MessageID: "m1"}})
 			var rej *forward.RejectedError
 			switch tc.want {

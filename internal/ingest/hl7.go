@@ -14,6 +14,7 @@ import (
 	"filtrate/hl7v2"
 	"filtrate/internal/pipeline"
 	"filtrate/internal/telemetry"
+	"filtrate/store"
 )
 
 // HL7 handles HL7 v2 ORU^R01 messages: it implements mllp.Handler.
@@ -25,6 +26,8 @@ type HL7 struct {
 	Notify  func()             // wakes the HL7 v2 forwarder after a commit; may be nil
 	Limits  hl7v2.Limits
 	Now     func() time.Time
+	// Timeout bounds recording one message (default DefaultTimeout).
+	Timeout time.Duration
 
 	seq atomic.Uint64
 }
@@ -90,6 +93,12 @@ func (h *HL7) Handle(ctx context.Context, payload []byte) (p Processed) {
 		return h.refuse(msg, hl7v2.AckReject, hl7v2.ErrorDetail{Code: hl7v2.ErrCodeUnsupportedType, Location: "MSH^1^9",
 			Text: "unsupported message type: only ORU^R01 is accepted"}, errors.New("unsupported message type"))
 	}
+	if msg.ControlID() == "" {
+		// Without a control ID a message can neither be acknowledged to its
+		// sender nor told apart from the next one.
+		return h.refuse(msg, hl7v2.AckReject, hl7v2.ErrorDetail{Code: hl7v2.ErrCodeRequiredField, Location: "MSH^1^10",
+			Text: "MSH-10 message control ID is required"}, errors.New("no message control ID"))
+	}
 	st := h.State()
 	oru, err := hl7v2.ExtractORU(msg, hl7v2.ExtractOptions{Codes: st.Codes, Location: st.Location})
 	if err != nil {
@@ -115,11 +124,24 @@ func (h *HL7) Handle(ctx context.Context, payload []byte) (p Processed) {
 	out := enriched.Encode()
 	var outs []pipeline.Output
 	if st.ForwardHL7 {
-		outs = append(outs, pipeline.Output{Destination: DestinationHL7, PartitionKey: pm.PatientID,
+		// Reports of one patient go out in order; a report without a
+		// patient identifier is ordered with everything from its sender.
+		partition := pm.PatientID
+		if partition == "" {
+			partition = "sender:" + msg.MSH().Field(3).String() + "|" + msg.MSH().Field(4).String()
+		}
+		outs = append(outs, pipeline.Output{Destination: DestinationHL7, PartitionKey: partition,
 			MessageID: pm.MessageID, ContentType: "application/hl7-v2", Payload: out})
 	}
-	rcpt, err := h.Proc.Commit(ctx, pm, evals, st.Snapshot, outs)
-	if err != nil {
+	cctx, cancel := context.WithTimeout(ctx, h.timeout())
+	defer cancel()
+	rcpt, err := h.Proc.Commit(cctx, pm, evals, st.Snapshot, outs)
+	switch {
+	case errors.Is(err, store.ErrInvalid):
+		// Resending the same message would fail the same way.
+		h.logger().Error("hl7v2 message cannot be recorded as sent; answered AR", "err", err)
+		return h.refuse(msg, hl7v2.AckReject, hl7v2.ErrorDetail{Code: hl7v2.ErrCodeApplication, Text: "message cannot be recorded as sent"}, err)
+	case err != nil:
 		h.logger().Error("hl7v2 message not recorded; answered AE", "err", err)
 		return h.refuse(msg, hl7v2.AckError, hl7v2.ErrorDetail{Code: hl7v2.ErrCodeApplication, Text: "message could not be recorded; resend later"}, err)
 	}
@@ -128,6 +150,18 @@ func (h *HL7) Handle(ctx context.Context, payload []byte) (p Processed) {
 	}
 	ack := hl7v2.BuildACK(msg, hl7v2.AckAccept, "", "", h.ackID(), h.now())
 	return Processed{Code: hl7v2.AckAccept, Ack: ack.Encode(), Enriched: out, Evaluated: evals, Duplicate: rcpt.Duplicate}
+}
+
+// DefaultTimeout bounds recording one message; past it the sender gets AE
+// and may resend (a resend of a message that was recorded after all is a
+// duplicate and changes nothing).
+const DefaultTimeout = 30 * time.Second
+
+func (h *HL7) timeout() time.Duration {
+	if h.Timeout > 0 {
+		return h.Timeout
+	}
+	return DefaultTimeout
 }
 
 func (h *HL7) refuse(msg *hl7v2.Message, code string, d hl7v2.ErrorDetail, err error) Processed {

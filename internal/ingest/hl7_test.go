@@ -273,3 +273,25 @@ func TestAgeUsesTheLaboratoryTimeZone(t *testing.T) {
 	require.Empty(t, o.Results, "CKiD U25 needs height; no adult equation at 17")
 	require.Equal(t, calc.ReasonHeightMissing, o.Refusals[0].Code)
 }
+
+func TestControlIDIsRequired(t *testing.T) {
+	hs := newHarness(t, config.Default())
+	p := handle(t, hs, strings.Replace(adult, "|C1|", "||", 1))
+	require.Equal(t, hl7v2.AckReject, p.Code)
+	ack, err := hl7v2.ParseACK(p.Ack)
+	require.NoError(t, err)
+	require.Equal(t, hl7v2.ErrCodeRequiredField, ack.ErrorCode)
+}
+
+// A report without a patient identifier is still delivered in order with
+// the rest of its sender's reports.
+func TestPartitionWithoutPatientIdentifier(t *testing.T) {
+	cfg := config.Default()
+	cfg.HL7v2.Forward = "127.0.0.1:1"
+	hs := newHarness(t, cfg)
+	require.Equal(t, hl7v2.AckAccept, handle(t, hs, strings.Replace(adult, "P1^^^LAB^MR", "", 1)).Code)
+	items, err := hs.store.Claim(context.Background(), DestinationHL7, "t", 10, time.Minute)
+	require.NoError(t, err)
+	require.Len(t, items, 1)
+	require.Equal(t, "sender:LIS|LAB", items[0].PartitionKey)
+}
