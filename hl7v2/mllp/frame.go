@@ -18,6 +18,7 @@ package mllp
 
 import (
 	"bufio"
+	"bytes"
 	"errors"
 	"io"
 )
@@ -112,6 +113,13 @@ func ReadFrame(r *bufio.Reader, maxBytes int) ([]byte, error) {
 	}
 	if t != Terminator {
 		return nil, ErrFraming
+	}
+	// A start byte inside a frame means the frame before it was cut off
+	// (the sender gave up and started again): only the last frame counts,
+	// so that two messages are never merged into one. The cut-off message
+	// gets no answer, and its sender resends it.
+	if i := bytes.LastIndexByte(payload, StartBlock); i >= 0 && !tooLarge {
+		payload = payload[i+1:]
 	}
 	if payload == nil {
 		payload = []byte{}

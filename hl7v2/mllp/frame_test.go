@@ -31,6 +31,9 @@ func TestReadFrame(t *testing.T) {
 		{name: "truncated inside payload", in: "\x0babc", wantErr: io.ErrUnexpectedEOF},
 		{name: "truncated after end block", in: "\x0babc\x1c", wantErr: io.ErrUnexpectedEOF},
 		{name: "exactly the limit", in: frame("12345"), max: 5, want: []string{"12345"}, wantErr: io.EOF},
+		// A cut-off frame followed by a new one: the two messages are not
+		// merged; only the complete one is delivered.
+		{name: "start block inside a frame", in: "\x0bMSH|cut off" + frame("MSH|whole"), want: []string{"MSH|whole"}, wantErr: io.EOF},
 		{name: "large payload across buffer refills", in: frame(strings.Repeat("x", 10000)), want: []string{strings.Repeat("x", 10000)}, wantErr: io.EOF},
 	}
 	for _, tt := range tests {

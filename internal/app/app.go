@@ -76,6 +76,8 @@ type App struct {
 	ready    atomic.Bool
 	reloadMu sync.Mutex
 
+	runMu         sync.Mutex // guards stopped and cancelWorkers between Run and Shutdown
+	stopped       bool
 	cancelWorkers context.CancelFunc
 	workersDone   sync.WaitGroup
 	cleanups      []cleanup
@@ -232,6 +234,11 @@ func (a *App) Run(ctx context.Context) error {
 			errc <- fmt.Errorf("http listener: %w", err)
 		}
 	}()
+	a.runMu.Lock()
+	if a.stopped {
+		a.runMu.Unlock()
+		return errors.New("app: already shut down")
+	}
 	wctx, cancel := context.WithCancel(context.WithoutCancel(ctx))
 	a.cancelWorkers = cancel
 	for _, w := range a.workers {
@@ -241,6 +248,7 @@ func (a *App) Run(ctx context.Context) error {
 			_ = w.Run(wctx)
 		}()
 	}
+	a.runMu.Unlock()
 	a.ready.Store(true)
 	a.log.Info("filtrate serving", "hl7v2", a.HL7Addr(), "http", a.HTTPAddr(), "version", a.opts.Version)
 
@@ -259,6 +267,10 @@ func (a *App) Run(ctx context.Context) error {
 // named cleanups in reverse order, all within ctx. Calling it twice is safe.
 func (a *App) Shutdown(ctx context.Context) error {
 	a.shutdownOnce.Do(func() {
+		a.runMu.Lock()
+		a.stopped = true
+		cancelWorkers := a.cancelWorkers
+		a.runMu.Unlock()
 		a.ready.Store(false)
 		var errs []error
 		if a.mllpSrv != nil {
@@ -275,8 +287,8 @@ func (a *App) Shutdown(ctx context.Context) error {
 		} else if a.httpLn != nil {
 			a.httpLn.Close()
 		}
-		if a.cancelWorkers != nil {
-			a.cancelWorkers()
+		if cancelWorkers != nil {
+			cancelWorkers()
 		}
 		done := make(chan struct{})
 		go func() { a.workersDone.Wait(); close(done) }()
@@ -327,8 +339,8 @@ func (a *App) reload() error {
 		return fmt.Errorf("reload: %w", err)
 	}
 	old := a.cfg.Load()
-	if restartNeeded(old, cfg) {
-		a.log.Warn("configuration reload: listener, TLS, store or forwarding changes take effect after a restart")
+	if keys := restartKeys(old, cfg); len(keys) > 0 {
+		a.log.Warn("configuration reload: these changes take effect after a restart", "keys", keys)
 		// Forwarding targets stay as started.
 		st.ForwardHL7, st.ForwardFHIR = a.state.Load().ForwardHL7, a.state.Load().ForwardFHIR
 	}
@@ -338,10 +350,35 @@ func (a *App) reload() error {
 	return nil
 }
 
-func restartNeeded(old, cur *config.Config) bool {
-	return old.Store != cur.Store || old.HTTP.Listen != cur.HTTP.Listen || old.HL7v2.Listen != cur.HL7v2.Listen ||
-		old.HL7v2.Forward != cur.HL7v2.Forward || old.FHIR.Forward != cur.FHIR.Forward ||
-		old.HTTP.TLS != cur.HTTP.TLS || old.HL7v2.TLS != cur.HL7v2.TLS || old.HL7v2.ForwardTLS != cur.HL7v2.ForwardTLS
+// restartKeys lists the changed keys that a reload does not apply: the
+// listeners, TLS, the store and the forwarders are built once at start.
+// Policy, calibration, analytes, reporting, timezone and HTTP
+// authentication tokens apply at once.
+func restartKeys(old, cur *config.Config) []string {
+	var keys []string
+	add := func(changed bool, key string) {
+		if changed {
+			keys = append(keys, key)
+		}
+	}
+	add(old.Store != cur.Store, "store")
+	add(old.HTTP.Listen != cur.HTTP.Listen, "http.listen")
+	add(old.HTTP.TLS != cur.HTTP.TLS, "http.tls")
+	add(old.HTTP.MaxRequestBytes != cur.HTTP.MaxRequestBytes || old.HTTP.MaxConnections != cur.HTTP.MaxConnections ||
+		old.HTTP.ReadTimeout != cur.HTTP.ReadTimeout || old.HTTP.WriteTimeout != cur.HTTP.WriteTimeout, "http limits and time-outs")
+	add(old.HL7v2.Listen != cur.HL7v2.Listen, "hl7v2.listen")
+	add(old.HL7v2.TLS != cur.HL7v2.TLS, "hl7v2.tls")
+	add(old.HL7v2.Forward != cur.HL7v2.Forward, "hl7v2.forward")
+	add(old.HL7v2.ForwardTLS != cur.HL7v2.ForwardTLS, "hl7v2.forward_tls")
+	add(old.HL7v2.MaxFrameBytes != cur.HL7v2.MaxFrameBytes || old.HL7v2.MaxConnections != cur.HL7v2.MaxConnections ||
+		old.HL7v2.ReadTimeout != cur.HL7v2.ReadTimeout || old.HL7v2.IdleTimeout != cur.HL7v2.IdleTimeout ||
+		old.HL7v2.AckTimeout != cur.HL7v2.AckTimeout, "hl7v2 limits and time-outs")
+	add(old.HL7v2.Retry != cur.HL7v2.Retry, "hl7v2.retry")
+	add(old.FHIR.Forward != cur.FHIR.Forward, "fhir.forward")
+	add(old.FHIR.ForwardTokenFile != cur.FHIR.ForwardTokenFile || old.FHIR.ForwardToken() != cur.FHIR.ForwardToken(), "fhir.forward_token_file")
+	add(old.FHIR.PatientSource != cur.FHIR.PatientSource || old.FHIR.PatientCacheTTL != cur.FHIR.PatientCacheTTL, "fhir.patient_source")
+	add(old.FHIR.Retry != cur.FHIR.Retry, "fhir.retry")
+	return keys
 }
 
 func (a *App) outboxStats(ctx context.Context) ([]telemetry.OutboxStat, error) {

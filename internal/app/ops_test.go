@@ -348,3 +348,22 @@ http:
 	code, _ = getAuth(base+"/audit?since=yesterday", "audit-view-token-for-tests")
 	require.Equal(t, http.StatusBadRequest, code)
 }
+
+func TestRunAfterShutdownReturns(t *testing.T) {
+	cfg, err := config.Load([]byte(fmt.Sprintf("store: file:%s\nhl7v2:\n  listen: 127.0.0.1:0\nhttp:\n  listen: 127.0.0.1:0\n", filepath.Join(t.TempDir(), "x.db"))), "t.yml")
+	require.NoError(t, err)
+	a, err := New(context.Background(), Options{Config: cfg})
+	require.NoError(t, err)
+	require.NoError(t, a.Shutdown(context.Background()))
+	require.ErrorContains(t, a.Run(context.Background()), "already shut down")
+}
+
+func TestRestartKeys(t *testing.T) {
+	old := config.Default()
+	cur := config.Default()
+	require.Empty(t, restartKeys(old, cur))
+	cur.HL7v2.Forward = "127.0.0.1:9"
+	cur.HL7v2.AckTimeout = 5 * time.Second
+	cur.PolicyConfig.Preset = "ekfc" // applies at once: not listed
+	require.Equal(t, []string{"hl7v2.forward", "hl7v2 limits and time-outs"}, restartKeys(old, cur))
+}
