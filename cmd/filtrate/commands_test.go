@@ -29,7 +29,12 @@ func TestDemo(t *testing.T) {
 	require.Contains(t, out, "=> eGFR 74 mL/min/{1.73_m2} by CKD-EPI 2021 creatinine (LOINC 98979-8, status F)")
 	require.Contains(t, out, "note: eGFR not calculated: height is required for this age and was not provided.")
 	require.Contains(t, out, "hash chain verified")
-	require.Contains(t, out, "Downstream receiver got 9 reports, each once.")
+	require.Contains(t, out, "The HL7 v2 downstream receiver got 9 reports, each once.")
+	// The FHIR request of the scenario goes to the same daemon: CKD-EPI
+	// 2021 for the invented 38-year-old man with 1.05 mg/dL gives 93
+	// (hand computation: 142 × (1.05/0.9)^−1.200 × 0.9938^38 = 93.2).
+	require.Contains(t, out, "FHIR request 10-fhir-creatinine-cystatin.json: HTTP 200")
+	require.Contains(t, out, "=> eGFR (CKD-EPI 2021 creatinine) 93 mL/min/{1.73_m2} (LOINC 98979-8, status final)")
 	require.Contains(t, out, "licensed clinicians decide")
 }
 
@@ -166,10 +171,10 @@ func TestAuditCheckpointCommand(t *testing.T) {
 	cps := filepath.Join(dir, "checkpoints.jsonl")
 	out, _, err := runCLI(t, "", "audit", "checkpoint", "--config", cfgPath, "--out", cps)
 	require.NoError(t, err)
-	require.Contains(t, out, "checkpoint at record 11 appended")
+	require.Contains(t, out, "checkpoint at record 14 appended") // 11 HL7 v2 records + 3 FHIR results
 	out, _, err = runCLI(t, "", "audit", "verify", "--config", cfgPath, "--checkpoints", cps)
 	require.NoError(t, err, out)
-	require.Contains(t, out, "audit verify: OK: 11 records")
+	require.Contains(t, out, "audit verify: OK: 14 records")
 }
 
 func TestDryrunFHIR(t *testing.T) {

@@ -1,16 +1,19 @@
 // Package demo shows filtrate's whole job on invented data: it starts the
 // daemon in-process on free loopback ports with a temporary store and a
 // built-in downstream receiver, sends the demo scenario's HL7 v2 reports
-// over MLLP, and prints what reached the receiver and what the audit trail
-// recorded.
+// over MLLP and its FHIR requests over HTTP, and prints what reached the
+// receiver, what the FHIR answers held and what the audit trail recorded.
 package demo
 
 import (
+	"bytes"
 	"context"
+	"encoding/json"
 	"errors"
 	"fmt"
 	"io"
 	"net"
+	"net/http"
 	"os"
 	"path/filepath"
 	"sort"
@@ -153,6 +156,37 @@ func Run(ctx context.Context, out io.Writer, opts Options) error {
 		}
 	}
 
+	// FHIR requests of the scenario, answered by the same daemon.
+	jsonFiles, _ := filepath.Glob(filepath.Join(opts.ScenarioDir, "*.json"))
+	sort.Strings(jsonFiles)
+	type fhirResult struct {
+		name   string
+		status int
+		body   []byte
+	}
+	var fhirResults []fhirResult
+	for _, f := range jsonFiles {
+		body, err := os.ReadFile(f)
+		if err != nil {
+			return err
+		}
+		req, err := http.NewRequestWithContext(ctx, http.MethodPost, "http://"+a.HTTPAddr()+"/fhir", bytes.NewReader(body))
+		if err != nil {
+			return err
+		}
+		req.Header.Set("Content-Type", "application/fhir+json")
+		resp, err := http.DefaultClient.Do(req)
+		if err != nil {
+			return fmt.Errorf("demo: FHIR request %s: %w", filepath.Base(f), err)
+		}
+		answer, err := io.ReadAll(resp.Body)
+		resp.Body.Close()
+		if err != nil {
+			return err
+		}
+		fhirResults = append(fhirResults, fhirResult{name: filepath.Base(f), status: resp.StatusCode, body: answer})
+	}
+
 	cautions := map[string]bool{}
 	for _, c := range st.Snapshot.Policy.Cautions {
 		cautions[c] = true
@@ -162,6 +196,9 @@ func Run(ctx context.Context, out io.Writer, opts Options) error {
 		fwd := rcv.msgs[id]
 		rcv.mu.Unlock()
 		printReport(out, id, acks[id], fwd, cautions)
+	}
+	for _, r := range fhirResults {
+		printFHIR(out, r.name, r.status, r.body, cautions)
 	}
 	fmt.Fprintln(out, "Cautions attached to every eGFR:")
 	for _, c := range st.Snapshot.Policy.Cautions {
@@ -280,7 +317,7 @@ func auditSummary(ctx context.Context, out io.Writer, s store.Store, delivered i
 	fmt.Fprintf(out, "Audit trail: %d records from %d reports; %s (head #%d %s)\n", n, len(messages), verdict, head.LastID, short(head.LastHash))
 	fmt.Fprintf(out, "  computed: %s\n", counts(computed))
 	fmt.Fprintf(out, "  refused:  %s\n", counts(refused))
-	fmt.Fprintf(out, "Downstream receiver got %d reports, each once.\n", delivered)
+	fmt.Fprintf(out, "The HL7 v2 downstream receiver got %d reports, each once.\n", delivered)
 	fmt.Fprintln(out, "\neGFR is an estimate; local laboratory policy and licensed clinicians decide, and local regulations apply.")
 	if !v.OK() {
 		return errors.New("demo: audit chain does not verify")
@@ -302,4 +339,58 @@ func counts(m map[string]int) string {
 		parts = append(parts, fmt.Sprintf("%s %d", k, m[k]))
 	}
 	return strings.Join(parts, ", ")
+}
+
+// printFHIR shows the eGFR Observations and the issues of a FHIR answer.
+func printFHIR(out io.Writer, name string, status int, body []byte, cautions map[string]bool) {
+	fmt.Fprintf(out, "FHIR request %s: HTTP %d\n", name, status)
+	var b struct {
+		Entry []struct {
+			Resource json.RawMessage `json:"resource"`
+		} `json:"entry"`
+	}
+	if err := json.Unmarshal(body, &b); err != nil {
+		fmt.Fprintln(out, "  (answer unreadable)")
+		return
+	}
+	for _, e := range b.Entry {
+		var r struct {
+			ResourceType string `json:"resourceType"`
+			Status       string `json:"status"`
+			Code         struct {
+				Coding []struct{ Code string } `json:"coding"`
+				Text   string                  `json:"text"`
+			} `json:"code"`
+			ValueQuantity *struct {
+				Value      float64 `json:"value"`
+				Comparator string  `json:"comparator"`
+				Code       string  `json:"code"`
+			} `json:"valueQuantity"`
+			Note  []struct{ Text string } `json:"note"`
+			Issue []struct {
+				Diagnostics string `json:"diagnostics"`
+			} `json:"issue"`
+		}
+		if json.Unmarshal(e.Resource, &r) != nil {
+			continue
+		}
+		switch r.ResourceType {
+		case "Observation":
+			if r.ValueQuantity == nil || len(r.Code.Coding) == 0 {
+				continue
+			}
+			fmt.Fprintf(out, "  => %s %s%g %s (LOINC %s, status %s)\n", r.Code.Text, r.ValueQuantity.Comparator,
+				r.ValueQuantity.Value, r.ValueQuantity.Code, r.Code.Coding[0].Code, r.Status)
+			for _, n := range r.Note {
+				if !cautions[n.Text] {
+					fmt.Fprintln(out, "       "+n.Text)
+				}
+			}
+		case "OperationOutcome":
+			for _, is := range r.Issue {
+				fmt.Fprintln(out, "     note: "+is.Diagnostics)
+			}
+		}
+	}
+	fmt.Fprintln(out)
 }
