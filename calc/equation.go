@@ -77,6 +77,24 @@ func (e Equation) Uses() []Analyte {
 	return a
 }
 
+// Inputs lists every analyte the equation computes from: those of Uses plus
+// height, weight and the timed-urine volume and collection time when it
+// needs them. A change to any of them (a corrected height, say) changes the
+// result.
+func (e Equation) Inputs() []Analyte {
+	a := e.Uses()
+	if e.Needs.Has(NeedHeight) {
+		a = append(a, Height)
+	}
+	if e.Needs.Has(NeedWeight) {
+		a = append(a, Weight)
+	}
+	if e.Needs.Has(NeedTimedUrine) {
+		a = append(a, UrineVolume, CollectionTime)
+	}
+	return a
+}
+
 // Registry holds every equation version calc knows. It is immutable once
 // built.
 type Registry struct {

@@ -353,7 +353,7 @@ func (c *Calculator) compute(p Policy, e Equation, in Inputs) (Result, error) {
 	code, name := p.loinc(e)
 	r := Result{
 		Equation: e.ID, EquationVersion: e.Version, EquationName: e.Name,
-		LOINC: code, LOINCName: name, Uses: e.Uses(), AgeYears: in.AgeYears,
+		LOINC: code, LOINCName: name, Uses: e.Uses(), Inputs: e.Inputs(), AgeYears: in.AgeYears,
 		Steps: steps, Exact: v, Unit: e.Unit,
 	}
 	rounded := roundTo(v, p.Decimals)

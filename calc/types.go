@@ -132,6 +132,9 @@ type Result struct {
 	LOINCName       string    `json:"loinc_name"`
 	Primary         bool      `json:"primary"`
 	Uses            []Analyte `json:"uses"`
+	// Inputs lists every analyte the value was computed from, including
+	// height and weight (Equation.Inputs); its status follows all of them.
+	Inputs []Analyte `json:"inputs,omitempty"`
 	// AssumedSex is set when the patient's sex was unknown and the policy
 	// asked for both values; the result was computed as if this sex.
 	AssumedSex string   `json:"assumed_sex,omitempty"`

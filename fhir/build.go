@@ -4,6 +4,8 @@ import (
 	"crypto/sha256"
 	"encoding/hex"
 	"fmt"
+	"net/url"
+	"slices"
 	"strconv"
 	"strings"
 	"time"
@@ -50,7 +52,9 @@ type GroupResult struct {
 // Withdrawal is one eGFR Observation sent earlier that the receiver must
 // withdraw. It is written with the id the result was written to: the id
 // derives from the group's patient identifier and collection time, the
-// equation and the assumed sex, exactly as for a result.
+// equation, the assumed sex and the identities of the measured inputs the
+// equation uses, exactly as for a result (see the package documentation,
+// Identity, for the one case where it cannot be).
 type Withdrawal struct {
 	// SourceID names the input Observation (Observation.SourceID) whose
 	// status, or whose correction, withdraws the eGFR; it becomes
@@ -86,18 +90,45 @@ type built struct {
 }
 
 // resultID returns the id of the eGFR Observation of a patient (its
-// Patient.identifier, system|value), collection time (UTC), equation and
-// assumed sex: the first 128 bits of a SHA-256, in hex. Results and
-// withdrawals both take their id from here, with the same four inputs, so
-// a withdrawal addresses exactly the Observation its result was written
-// to.
-func resultID(g *Group, equation, assumedSex string) string {
+// Patient.identifier, system|value), collection time (UTC), equation,
+// assumed sex and input identities (Observation.identity of the measured
+// inputs the equation uses, in any order): the first 128 bits of a
+// SHA-256, in hex. Results and withdrawals both take their id from here,
+// with the same inputs, so a withdrawal addresses exactly the Observation
+// its result was written to. The identities tell apart two specimens of
+// one patient with the same collection time (a date without a time, say);
+// without any, the id derives from the first four alone.
+func resultID(g *Group, equation, assumedSex string, identities []string) string {
 	at := ""
 	if !g.CollectedAt.IsZero() {
 		at = g.CollectedAt.UTC().Format(time.RFC3339Nano)
 	}
-	h := sha256.Sum256([]byte(strings.Join([]string{g.Patient.ID, at, equation, assumedSex}, "\x00")))
+	parts := []string{g.Patient.ID, at, equation, assumedSex}
+	if len(identities) > 0 {
+		ids := slices.Clone(identities)
+		slices.Sort(ids)
+		parts = append(parts, "inputs")
+		for _, id := range ids {
+			parts = append(parts, strconv.Quote(id)) // quoted: no NUL inside a part
+		}
+	}
+	h := sha256.Sum256([]byte(strings.Join(parts, "\x00")))
 	return hex.EncodeToString(h[:16])
+}
+
+// identities returns the non-empty identities of inputs whose analyte is
+// one of uses: the measured inputs (creatinine, cystatin C, urine
+// creatinine) that key an eGFR's id. Height and weight are left out: an
+// eGFR recalculated with another height or weight Observation is the same
+// eGFR of the same specimen, and must replace the one sent before.
+func identities(inputs []*Observation, uses []calc.Analyte) []string {
+	var ids []string
+	for _, o := range inputs {
+		if o.identity != "" && slices.Contains(uses, o.Analyte) {
+			ids = append(ids, o.identity)
+		}
+	}
+	return ids
 }
 
 // build makes the computed resources and issues. withRecords adds the
@@ -223,12 +254,17 @@ func (g *Group) refusalAnchor(rf calc.Refusal) *Observation {
 	return nil
 }
 
-// used finds the inputs a result was computed from: those calc reports for
-// each analyte the equation uses, else the first usable input of that
-// analyte.
+// used finds the inputs a result was computed from, for each analyte of
+// calc.Result.Inputs (height and weight included) or, when that is empty,
+// of calc.Result.Uses: the input calc reports for it, else the first
+// usable input of that analyte.
 func (g *Group) used(out *calc.Outcome, r calc.Result) []*Observation {
+	analytes := r.Inputs
+	if len(analytes) == 0 {
+		analytes = r.Uses
+	}
 	var used []*Observation
-	for _, a := range r.Uses {
+	for _, a := range analytes {
 		var found *Observation
 		for _, in := range out.Inputs {
 			if in.Analyte == a {
@@ -287,10 +323,10 @@ func resultText(r calc.Result) string {
 }
 
 func (x *Extraction) result(g *Group, out *calc.Outcome, r calc.Result, meta Meta, recordID int64) (output, output, error) {
-	h := resultID(g, r.Equation, r.AssumedSex)
+	used := g.used(out, r)
+	h := resultID(g, r.Equation, r.AssumedSex, identities(used, r.Uses))
 	obsID, provID := "egfr-"+h, "prov-"+h
 	obsURL, provURL := "urn:uuid:"+uuidFrom("Observation/"+obsID), "urn:uuid:"+uuidFrom("Provenance/"+provID)
-	used := g.used(out, r)
 
 	o := &opb.Observation{
 		Id:       &dpb.Id{Value: obsID},
@@ -391,7 +427,7 @@ func (x *Extraction) withdrawal(g *Group, w Withdrawal, meta Meta) (output, erro
 		return output{}, fmt.Errorf("fhir: withdrawal without an equation")
 	}
 	var input *Observation
-	for _, o := range append(append([]*Observation(nil), g.Inputs...), g.Withdrawn...) {
+	for _, o := range g.all() {
 		if o.SourceID == w.SourceID {
 			input = o
 			break
@@ -404,7 +440,7 @@ func (x *Extraction) withdrawal(g *Group, w Withdrawal, meta Meta) (output, erro
 	if tpl.Unit == "" {
 		tpl.Unit = calc.UnitIndexed
 	}
-	id := "egfr-" + resultID(g, w.Equation, w.AssumedSex)
+	id := "egfr-" + resultID(g, w.Equation, w.AssumedSex, x.withdrawnIdentities(g, w, input))
 	o := &opb.Observation{
 		Id:       &dpb.Id{Value: id},
 		Status:   &opb.Observation_StatusCode{Value: status},
@@ -427,6 +463,65 @@ func (x *Extraction) withdrawal(g *Group, w Withdrawal, meta Meta) (output, erro
 	}
 	return output{typ: "Observation", id: id, fullURL: "urn:uuid:" + uuidFrom("Observation/"+id),
 		res: &bcrpb.ContainedResource{OneofResource: &bcrpb.ContainedResource_Observation{Observation: o}}}, nil
+}
+
+// all returns the group's inputs: its own, the withdrawn and the borrowed.
+func (g *Group) all() []*Observation {
+	return slices.Concat(g.Inputs, g.Withdrawn, g.Borrowed)
+}
+
+// withdrawnIdentities returns the input identities of the eGFR a
+// withdrawal withdraws, as its result had them (see resultID): for each
+// measured analyte the equation uses, the withdrawing input itself when it
+// is of that analyte, else the group's input of it (usable first, then
+// withdrawn, then any other; in request order). When the request holds no
+// input of an analyte the equation uses (a combined eGFR withdrawn for a
+// cystatin C sent alone, say), the identities are unknown and it returns
+// nil, so that the id derives from patient, collection time, equation and
+// assumed sex alone: a limitation documented in the package documentation.
+func (x *Extraction) withdrawnIdentities(g *Group, w Withdrawal, input *Observation) []string {
+	reg := x.equations
+	if reg == nil {
+		reg = calc.Builtin()
+	}
+	var uses []calc.Analyte
+	if e, ok := reg.Latest(w.Equation); ok {
+		uses = e.Uses()
+	} else if input != nil && primary(input.Analyte) {
+		uses = []calc.Analyte{input.Analyte}
+	}
+	if len(uses) == 0 {
+		return nil
+	}
+	var inputs []*Observation
+	for _, a := range uses {
+		found := g.inputOf(a, input)
+		if found == nil {
+			return nil
+		}
+		inputs = append(inputs, found)
+	}
+	return identities(inputs, uses)
+}
+
+// inputOf returns the group's input of analyte a: self when it is of that
+// analyte, else the first usable input, else the first withdrawn, else
+// the first other (each in request order); nil when there is none.
+func (g *Group) inputOf(a calc.Analyte, self *Observation) *Observation {
+	if self != nil && self.Analyte == a {
+		return self
+	}
+	for _, o := range g.Inputs {
+		if o.Analyte == a && o.Action == hl7v2.StatusCompute {
+			return o
+		}
+	}
+	for _, o := range slices.Concat(g.Withdrawn, g.Inputs) {
+		if o.Analyte == a {
+			return o
+		}
+	}
+	return nil
 }
 
 // splitComparator splits a reported value such as ">90" into its
@@ -575,12 +670,28 @@ func (c *Codec) Response(x *Extraction, res []GroupResult, meta Meta) ([]byte, e
 
 // Forward writes the transaction Bundle sent downstream: the request's
 // resources (an input Observation that gives no eGFR carries a note saying
-// why) with their own request, or PUT [type]/[id] when they have an id and
-// POST otherwise, followed by the computed Observations and Provenances,
-// each PUT to its derived id so that a resent, corrected or withdrawn eGFR
-// replaces the one sent before. It returns the Bundle id (also its
-// identifier value in urn:filtrate:message), which is the outbox message ID.
-// Patients looked up from the patient source are not included.
+// why), followed by the computed Observations and Provenances, each PUT to
+// its derived id so that a resent, corrected or withdrawn eGFR replaces the
+// one sent before. It returns the Bundle id (also its identifier value in
+// urn:filtrate:message), which is the outbox message ID. Patients looked up
+// from the patient source are not included.
+//
+// Each request resource is sent with the first of these that applies:
+//
+//   - a Patient or Observation without a logical id that the sender
+//     POSTs, or sends without a request, and that has an identifier with
+//     system and value (the one stableIdentifier chooses): a conditional
+//     update, PUT [type]?identifier=[system]|[value], so that a corrected
+//     or entered-in-error version replaces the one sent before, and a
+//     redelivery changes nothing (FHIR R4 http.html#cond-update: no match
+//     creates, one match updates, several are an error). A resource with a
+//     logical id is not sent so: a server that holds the match under
+//     another id would refuse the update;
+//   - the sender's own request, as it was;
+//   - PUT [type]/[id] when it has a logical id;
+//   - otherwise POST [type] without a condition: nothing identifies the
+//     resource, so a redelivery after a lost acknowledgement could create
+//     it twice.
 func (c *Codec) Forward(x *Extraction, res []GroupResult, meta Meta) (id string, payload []byte, err error) {
 	b, err := x.build(res, meta, false)
 	if err != nil {
@@ -609,21 +720,23 @@ func (c *Codec) Forward(x *Extraction, res []GroupResult, meta Meta) (id string,
 		case strings.HasPrefix(e.ref, "urn:uuid:"):
 			be.FullUrl = uri(e.ref)
 		}
+		sys, val, hasIdentifier := resourceIdentifier(cr)
+		creates := e.request == nil || e.request.GetMethod().GetValue() == cpb.HTTPVerbCode_POST
+		fullURL := false // a urn:uuid fullUrl is needed for references to it
 		switch {
+		case rid == "" && hasIdentifier && creates:
+			be.Request = entryRequest(cpb.HTTPVerbCode_PUT, conditionalURL(typ, sys, val))
+			fullURL = true
 		case e.request != nil:
 			be.Request = clone(e.request)
 		case rid != "":
 			be.Request = entryRequest(cpb.HTTPVerbCode_PUT, typ+"/"+rid)
 		default:
 			be.Request = entryRequest(cpb.HTTPVerbCode_POST, typ)
-			// A redelivery (after a lost acknowledgement) must not create
-			// the resource twice: conditional create on its identifier.
-			if sys, val := firstIdentifier(cr); val != "" {
-				be.Request.IfNoneExist = str("identifier=" + sys + "|" + val)
-			}
-			if be.FullUrl == nil {
-				be.FullUrl = uri("urn:uuid:" + uuidFrom(x.Request.DedupKey()+"\x00"+e.expr))
-			}
+			fullURL = true
+		}
+		if fullURL && be.FullUrl == nil {
+			be.FullUrl = uri("urn:uuid:" + uuidFrom(x.Request.DedupKey()+"\x00"+e.expr))
 		}
 		bundle.Entry = append(bundle.Entry, be)
 	}
@@ -669,19 +782,22 @@ func resourceTypeID(cr *bcrpb.ContainedResource) (typ, id string) {
 	return typ, id
 }
 
-// firstIdentifier returns the system and value of the first identifier of a
-// Patient or Observation with a value.
-func firstIdentifier(cr *bcrpb.ContainedResource) (system, value string) {
-	var ids []*dpb.Identifier
-	if o := cr.GetObservation(); o != nil {
-		ids = o.GetIdentifier()
-	} else if p := cr.GetPatient(); p != nil {
-		ids = p.GetIdentifier()
+// resourceIdentifier returns the identifier (stableIdentifier) of a
+// Patient or Observation; ok is false for other resources and for those
+// without an identifier with system and value.
+func resourceIdentifier(cr *bcrpb.ContainedResource) (system, value string, ok bool) {
+	switch {
+	case cr.GetObservation() != nil:
+		return stableIdentifier(cr.GetObservation().GetIdentifier())
+	case cr.GetPatient() != nil:
+		return stableIdentifier(cr.GetPatient().GetIdentifier())
 	}
-	for _, id := range ids {
-		if v := id.GetValue().GetValue(); v != "" {
-			return id.GetSystem().GetValue(), v
-		}
-	}
-	return "", ""
+	return "", "", false
+}
+
+// conditionalURL is the url of a conditional update on an identifier:
+// [type]?identifier=[system]|[value], system and value query-escaped and
+// the separator "|" literal (FHIR R4 search.html#token).
+func conditionalURL(typ, system, value string) string {
+	return typ + "?identifier=" + url.QueryEscape(system) + "|" + url.QueryEscape(value)
 }

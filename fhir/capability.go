@@ -59,7 +59,7 @@ func (c *Codec) CapabilityStatement(cp Capabilities) ([]byte, error) {
 			Documentation: markdown("POST a Bundle (transaction, batch or collection) holding Patients and Observations to [base], " +
 				"or one Observation (with a contained Patient, or a Patient the patient source knows) to [base]/Observation. " +
 				"The answer is a Bundle with the calculated eGFR Observations, a Provenance for each, and an OperationOutcome " +
-				"saying why any eGFR was not calculated."),
+				"saying why any eGFR was not calculated. " + patientIdentifierDoc),
 			Resource: []*cspb.CapabilityStatement_Rest_Resource{{
 				Type:          &cspb.CapabilityStatement_Rest_Resource_TypeCode{Value: cpb.ResourceTypeCode_OBSERVATION},
 				Documentation: markdown(codesDoc(cp)),
@@ -75,6 +75,12 @@ func (c *Codec) CapabilityStatement(cp Capabilities) ([]byte, error) {
 	}
 	return c.Marshal(&bcrpb.ContainedResource{OneofResource: &bcrpb.ContainedResource_CapabilityStatement{CapabilityStatement: cs}})
 }
+
+// patientIdentifierDoc states the patient identity requirement (see
+// Extract).
+const patientIdentifierDoc = "Patient.identifier with both system and value is required for every Patient an input Observation " +
+	"refers to (contained, in the Bundle, or from the patient source): a request whose patient lacks one is refused with " +
+	"HTTP 422 Unprocessable Entity and an OperationOutcome naming Patient.identifier, and nothing is recorded or forwarded."
 
 // codesDoc lists the recognised codes and the codes reported.
 func codesDoc(cp Capabilities) string {
@@ -99,7 +105,8 @@ func codesDoc(cp Capabilities) string {
 		b.WriteString(strings.Join(local, ", "))
 	}
 	b.WriteString(". Values as valueQuantity with a UCUM code; a comparator makes the value censored (no eGFR). " +
-		"Collection time from effectiveDateTime or effectivePeriod.start; Patient.birthDate (full date) and gender.")
+		"Collection time from effectiveDateTime or effectivePeriod.start; Patient.identifier (system and value, required), " +
+		"Patient.birthDate (full date) and gender.")
 	var out []string
 	seen := map[string]bool{}
 	for _, r := range cp.Outputs {

@@ -27,16 +27,18 @@
 //     without a time is that date there. Less than day precision leaves it
 //     unset, so calc refuses for a missing age rather than guess one.
 //   - Patient: an identifier with system and value is required (see
-//     Identity below); birthDate (day precision required, as for
-//     collection time) and gender (female, male; anything else is
-//     unknown).
+//     Identity below; of several, the lexicographically smallest
+//     system|value is used, whatever their order); birthDate (day
+//     precision required, as for collection time) and gender (female,
+//     male; anything else is unknown).
 //   - Method and instrument for calibration rules: the first code of
 //     Observation.method (else its text), and Observation.device's
 //     identifier value (else its display).
 //   - Status: final, amended, corrected and preliminary are used;
 //     cancelled gives no eGFR and a note; entered-in-error gives a note;
 //     both join their group so that the caller can withdraw the eGFRs
-//     derived from them; registered adds nothing; unknown gives a note.
+//     derived from them (a height or weight in these statuses too, without
+//     a note); registered adds nothing; unknown gives a note.
 //
 // Inputs are grouped by patient and collection time; each group is one
 // calculation. A group without its own height or weight borrows the
@@ -45,29 +47,57 @@
 // # Outputs
 //
 // Each calc.Result becomes an Observation (status final, or preliminary,
-// corrected or amended when an input was; category laboratory; the LOINC
-// code of the result with text naming the equation; method naming the
-// equation; valueQuantity in UCUM, with comparator ">" for a capped value;
-// notes with the KDIGO category and each comment; derivedFrom its inputs)
-// and a Provenance that targets it. Refusals and notes are issues of one
-// OperationOutcome. Each Withdrawal of a GroupResult (decided by the
-// caller, internal/ingest, never here) becomes an Observation with status
-// entered-in-error or cancelled (FHIR R4 ObservationStatus), no value, the
-// code and method of the eGFR it withdraws, and a note saying why, so that
-// a receiver withdraws the value it holds.
+// corrected or amended when an input was, counting every input it was
+// calculated from, height and weight included (calc.Result.Inputs); category
+// laboratory; the LOINC code of the result with text naming the equation;
+// method naming the equation; valueQuantity in UCUM, with comparator ">"
+// for a capped value; notes with the KDIGO category and each comment;
+// derivedFrom those same inputs) and a Provenance that targets it.
+// Refusals and notes are issues of one OperationOutcome. Each Withdrawal
+// of a GroupResult (decided by the caller, internal/ingest, never here)
+// becomes an Observation with status entered-in-error or cancelled (FHIR
+// R4 ObservationStatus), no value, the code and method of the eGFR it
+// withdraws, and a note saying why, so that a receiver withdraws the value
+// it holds.
 //
 // # Identity
 //
 // Observation and Provenance ids are derived from the patient identifier
 // (Patient.identifier as system|value), the collection time (in UTC), the
-// equation and the assumed sex, for results and withdrawals alike (a
-// SHA-256, never the values themselves): a resent, corrected or withdrawn
-// result gets the id of the eGFR it replaces, and the forwarded
-// transaction updates it in place with PUT. Only a real identifier keys
-// them: a logical id or a reference is local to one request or server, and
-// two patients sharing one ("#pat") would share ids. An input whose Patient
-// has no identifier with system and value is refused with 422 and an
-// OperationOutcome naming Patient.identifier.
+// equation, the assumed sex and the identities of the measured inputs the
+// equation uses (creatinine, cystatin C, urine creatinine), for results
+// and withdrawals alike (a SHA-256, never the values themselves): a
+// resent, corrected or withdrawn result gets the id of the eGFR it
+// replaces, and the forwarded transaction updates it in place with PUT,
+// while two specimens of one patient with the same collection time (a
+// date without a time) get different ids. Only a real identifier keys the
+// patient: a logical id or a reference is local to one request or server,
+// and two patients sharing one ("#pat") would share ids. An input whose
+// Patient has no identifier with system and value is refused with 422 and
+// an OperationOutcome naming Patient.identifier.
+//
+// An input Observation's identity is its identifier (of those with system
+// and value, the lexicographically smallest system|value), else its
+// logical id, else its entry's fullUrl; a corrected or entered-in-error
+// version keeps it. Height and weight are not part of it: an eGFR
+// recalculated with a corrected or another height is the same eGFR and
+// replaces the one sent. Limitations: an Observation with none of the
+// three adds nothing to the id (two such specimens at the same time share
+// ids, as before), and a fullUrl that the sender does not keep across
+// resends (a fresh urn:uuid) gives a new id each time. A withdrawal finds
+// the identities of the eGFR's other inputs in its group; when the request
+// does not hold one (a combined creatinine–cystatin C eGFR withdrawn for a
+// cystatin C sent alone), the withdrawal's id derives from patient,
+// collection time, equation and assumed sex alone, and does not address
+// the eGFR it means to withdraw.
+//
+// The forwarded transaction sends each Patient and Observation of the
+// request that has no logical id but an identifier with system and value,
+// and that the sender POSTed or sent without a request, as a conditional
+// update (PUT [type]?identifier=[system]|[value]), so that a corrected or
+// entered-in-error version replaces the one held downstream; one with
+// neither goes as a plain POST, which a redelivery could duplicate; see
+// Codec.Forward.
 //
 // A request is recognised as resent (Request.DedupKey) by its
 // Bundle.identifier together with the SHA-256 of its body: the identical

@@ -110,6 +110,10 @@ type ExtractOptions struct {
 	// laboratory (as HL7 v2 times are). A date without a time is that date
 	// in Location. nil keeps each time in its own UTC offset.
 	Location *time.Location
+	// Equations tells which measured inputs an equation uses, so that a
+	// withdrawal is written with the id its result was written to (see
+	// the package documentation, Identity); default calc.Builtin().
+	Equations *calc.Registry
 }
 
 // StatusAction classifies Observation.status for eGFR; the values are
@@ -137,10 +141,11 @@ func ClassifyStatus(status string) StatusAction {
 
 // Patient is a patient that input Observations refer to.
 type Patient struct {
-	// ID identifies the patient: the first Patient.identifier with both a
-	// system and a value, as system|value. It names the patient in the
-	// audit trail and keys the ids of the eGFR Observations; a Patient
-	// without one is refused (see Extract).
+	// ID identifies the patient: of the Patient.identifiers with both a
+	// system and a value, the lexicographically smallest system|value, so
+	// that the order in which a sender lists them does not matter. It
+	// names the patient in the audit trail and keys the ids of the eGFR
+	// Observations; a Patient without one is refused (see Extract).
 	ID string
 	// BirthDateText and Gender are as received.
 	BirthDateText string
@@ -170,6 +175,9 @@ type Observation struct {
 	CollectedAt time.Time
 	Patient     *Patient
 
+	// identity is what keys the ids of the eGFRs calculated from this
+	// Observation (see observationIdentity); empty when it has none.
+	identity  string
 	effective *dpb.DateTime // as received, copied to outputs
 	entry     *entry
 }
@@ -188,11 +196,15 @@ type Group struct {
 	// the caller adds the policy.
 	Request calc.Request
 	// Inputs are the group's own input Observations, Borrowed the height
-	// and weight taken from elsewhere in the request.
+	// and weight taken from elsewhere in the request. Inputs holds height,
+	// weight and the other qualifying inputs in every status (only usable
+	// ones are calculated from), so that the caller can withdraw an eGFR
+	// made with a height or weight now entered in error or cancelled.
 	Inputs   []*Observation
 	Borrowed []*Observation
-	// Withdrawn lists inputs whose status withdraws them: entered-in-error
-	// or cancelled. They are not in Inputs.
+	// Withdrawn lists the creatinine, cystatin C and urine creatinine
+	// inputs whose status withdraws them: entered-in-error or cancelled.
+	// They are not in Inputs.
 	Withdrawn []*Observation
 
 	effective *dpb.DateTime
@@ -206,6 +218,8 @@ type Extraction struct {
 	Notes []Issue
 	// Inputs are every input Observation, in request order.
 	Inputs []*Observation
+
+	equations *calc.Registry
 }
 
 // primary reports the analytes an eGFR is calculated from (as opposed to
@@ -225,7 +239,7 @@ func (r *Request) Extract(opts ExtractOptions) (*Extraction, error) {
 	if codes == nil {
 		codes = hl7v2.DefaultCodeMap()
 	}
-	x := &Extraction{Request: r}
+	x := &Extraction{Request: r, equations: opts.Equations}
 	res := &resolver{req: r, lookup: opts.LookupPatient, patients: map[string]*Patient{}}
 	res.index()
 	for i, e := range r.entries {
@@ -313,7 +327,8 @@ func (x *Extraction) group() {
 		}
 	}
 	for _, o := range x.Inputs {
-		if g := groups[keyOf(o)]; g != nil && o.Action != hl7v2.StatusRetract && !(primary(o.Analyte) && o.Action == hl7v2.StatusCancel) {
+		withdrawn := o.Action == hl7v2.StatusRetract || o.Action == hl7v2.StatusCancel
+		if g := groups[keyOf(o)]; g != nil && !(primary(o.Analyte) && withdrawn) {
 			g.Inputs = append(g.Inputs, o)
 		}
 	}
@@ -361,6 +376,7 @@ func readObservation(e *entry, o *opb.Observation, codes *hl7v2.CodeMap, loc *ti
 		Analyte:    ce.Analyte,
 		Status:     status,
 		Action:     ClassifyStatus(status),
+		identity:   observationIdentity(o, e.fullURL),
 		entry:      e,
 	}
 	if obs.SourceID == "" {
@@ -593,12 +609,8 @@ func (rs *resolver) entryPatient(pe *entry, ref string, notPatient *InputError, 
 // withdraw another's. Without such an identifier the request is refused.
 func newPatient(pt *ppb.Patient, key, ref, patientExpr, subjectExpr string) (*Patient, error) {
 	p := &Patient{key: key, subject: ref}
-	for _, id := range pt.GetIdentifier() {
-		sys, v := id.GetSystem().GetValue(), id.GetValue().GetValue()
-		if sys != "" && v != "" {
-			p.ID = sys + "|" + v
-			break
-		}
+	if sys, v, ok := stableIdentifier(pt.GetIdentifier()); ok {
+		p.ID = sys + "|" + v
 	}
 	if p.ID == "" {
 		where := subjectExpr
@@ -616,6 +628,41 @@ func newPatient(pt *ppb.Patient, key, ref, patientExpr, subjectExpr string) (*Pa
 		return nil, inputError(http.StatusBadRequest, "value", "the patient identifier contains a NUL character", expr)
 	}
 	return p, nil
+}
+
+// stableIdentifier chooses, of the identifiers with both a system and a
+// value, the one whose system|value is lexicographically smallest: the
+// same identifier whatever order the sender lists them in, and the same
+// in every version of the resource that keeps its identifiers. ok is false
+// when no identifier has both.
+func stableIdentifier(ids []*dpb.Identifier) (system, value string, ok bool) {
+	best := ""
+	for _, id := range ids {
+		sys, v := id.GetSystem().GetValue(), id.GetValue().GetValue()
+		if sys == "" || v == "" {
+			continue
+		}
+		if k := sys + "|" + v; !ok || k < best {
+			best, system, value, ok = k, sys, v, true
+		}
+	}
+	return system, value, ok
+}
+
+// observationIdentity is the stable identity of an input Observation,
+// which keys the ids of the eGFRs calculated from it: its identifier (see
+// stableIdentifier) as system|value, else its logical id as
+// "Observation/[id]", else its entry's fullUrl; empty when it has none of
+// these. A corrected or entered-in-error version of an Observation keeps
+// its identifier and id, and so this identity.
+func observationIdentity(o *opb.Observation, fullURL string) string {
+	if sys, v, ok := stableIdentifier(o.GetIdentifier()); ok {
+		return sys + "|" + v
+	}
+	if id := o.GetId().GetValue(); id != "" {
+		return "Observation/" + id
+	}
+	return fullURL
 }
 
 // uuidFrom derives a name-based UUID (RFC 9562 version 8, from SHA-256)

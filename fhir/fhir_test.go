@@ -445,8 +445,21 @@ func TestCapabilityStatement(t *testing.T) {
 	require.NoError(t, c.Validate(body))
 	s := string(body)
 	for _, want := range []string{`"kind":"instance"`, `"fhirVersion":"4.0.1"`, `"code":"create"`, `"code":"transaction"`,
-		"2160-0 (creatinine)", "33863-2 (cystatin_c)", "CREA in https://northfield-valley-lab.example/codes", "98979-8"} {
+		"2160-0 (creatinine)", "33863-2 (cystatin_c)", "CREA in https://northfield-valley-lab.example/codes", "98979-8",
+		"Patient.identifier (system and value, required)"} {
 		require.Contains(t, s, want)
+	}
+	// The patient identity requirement is stated where a sender reads the
+	// server's rules (rest.documentation), with the status of a refusal
+	// (HTTP 422, as Extract answers; FHIR R4 http.html: 422 Unprocessable
+	// Entity for a resource that violates the server's business rules).
+	var cs struct {
+		Rest []struct{ Documentation string } `json:"rest"`
+	}
+	require.NoError(t, json.Unmarshal(body, &cs))
+	require.Len(t, cs.Rest, 1)
+	for _, want := range []string{"Patient.identifier with both system and value is required", "refused with HTTP 422"} {
+		require.Contains(t, cs.Rest[0].Documentation, want)
 	}
 }
 
@@ -501,9 +514,10 @@ func TestPatientIdentifierRequired(t *testing.T) {
 func TestResultIDsDifferByPatient(t *testing.T) {
 	a := extract(t, observation(patient("NVL-200877", "female", "1974-01-15"), nil), EndpointObservation)
 	b := extract(t, observation(patient("NVL-200878", "female", "1974-01-15"), nil), EndpointObservation)
-	require.NotEqual(t, resultID(a.Groups[0], "ckd-epi-2021-cr", ""), resultID(b.Groups[0], "ckd-epi-2021-cr", ""))
-	again := extract(t, observation(patient("NVL-200877", "female", "1974-01-15"), map[string]string{"id": `"nvl-o-2"`}), EndpointObservation)
-	require.Equal(t, resultID(a.Groups[0], "ckd-epi-2021-cr", ""), resultID(again.Groups[0], "ckd-epi-2021-cr", ""))
+	ids := func(x *Extraction) []string { return identities(x.Inputs, []calc.Analyte{calc.Creatinine}) }
+	require.NotEqual(t, resultID(a.Groups[0], "ckd-epi-2021-cr", "", ids(a)), resultID(b.Groups[0], "ckd-epi-2021-cr", "", ids(b)))
+	again := extract(t, observation(patient("NVL-200877", "female", "1974-01-15"), map[string]string{"status": `"corrected"`}), EndpointObservation)
+	require.Equal(t, resultID(a.Groups[0], "ckd-epi-2021-cr", "", ids(a)), resultID(again.Groups[0], "ckd-epi-2021-cr", "", ids(again)))
 }
 
 // TestCollectionTimeInLaboratoryZone: effective times are read in the

@@ -2,6 +2,7 @@ package hl7v2
 
 import (
 	"fmt"
+	"slices"
 	"strconv"
 	"strings"
 
@@ -244,7 +245,7 @@ func (e *enricher) planOrder(ord *Order, out *calc.Outcome, withdrawals []Withdr
 				anchor = ord.Observations[len(ord.Observations)-1].seg
 			}
 			p := e.at(anchor)
-			p.blocks = append(p.blocks, e.resultBlock(ord, r, combinedStatus(used), sub))
+			p.blocks = append(p.blocks, e.resultBlock(ord, r, combinedStatus(append(used, statusOnly(ord, out, r)...)), sub))
 		}
 	}
 	for _, w := range withdrawals {
@@ -329,6 +330,27 @@ func usedObservations(ord *Order, out *calc.Outcome, r calc.Result) []*Observati
 		}
 	}
 	return used
+}
+
+// statusOnly finds the observations of the order that a result was also
+// computed from without being placed beside them (height, weight, urine
+// volume, collection time: calc.Result.Inputs beyond Uses), so that a
+// corrected height gives a corrected eGFR.
+func statusOnly(ord *Order, out *calc.Outcome, r calc.Result) []*Observation {
+	var extra []*Observation
+	for _, a := range r.Inputs {
+		if slices.Contains(r.Uses, a) {
+			continue
+		}
+		for _, in := range out.Inputs {
+			if in.Analyte == a && in.Accepted {
+				if obs := ord.bySource(in.SourceID); obs != nil {
+					extra = append(extra, obs)
+				}
+			}
+		}
+	}
+	return extra
 }
 
 // combinedStatus is the status of a value derived from observations: the

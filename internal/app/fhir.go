@@ -39,6 +39,7 @@ func (a *App) setupFHIR(cfg *config.Config) error {
 			return codeEntries(a.Config())
 		},
 		Started: time.Now(),
+		History: a.store,
 	}
 	if cfg.FHIR.PatientSource != "" {
 		h.Patients = &ingest.FHIRPatients{

@@ -22,6 +22,7 @@ func (a *App) setupHL7(cfg *config.Config) error {
 		Metrics: a.metrics,
 		Logger:  a.log.With("listener", "hl7v2"),
 		Limits:  hl7v2.Limits{MaxMessageBytes: cfg.HL7v2.MaxFrameBytes},
+		History: a.store,
 	}
 	for _, w := range a.workers {
 		if w.Destination == ingest.DestinationHL7 {

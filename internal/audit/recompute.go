@@ -172,6 +172,9 @@ func (rc *Recomputer) Recompute(rec store.AuditRecord) (Verdict, error) {
 	if rec.SuppressionCode == pipeline.ReasonWithdrawn {
 		return Verdict{Outcome: NotApplicable, Reason: "input withdrawn: nothing to recompute"}, nil
 	}
+	if rec.SuppressionCode == pipeline.ReasonEGFRWithdrawn {
+		return Verdict{Outcome: NotApplicable, Reason: "eGFR withdrawn: nothing to recompute"}, nil
+	}
 	fail := func(format string, args ...any) (Verdict, error) {
 		v := Verdict{Outcome: Failed, Equation: rec.Equation, EquationVersion: rec.EquationVersion, Reason: fmt.Sprintf(format, args...)}
 		return v, fmt.Errorf("audit: record %d: %s", rec.ID, v.Reason)

@@ -56,6 +56,9 @@ type FHIR struct {
 	// Started is the CapabilityStatement's date; zero means now.
 	Started time.Time
 	Now     func() time.Time
+	// History, when set, lets a correction of one input withdraw eGFRs
+	// made earlier with another input of the same specimen.
+	History HistorySource
 }
 
 // FHIRProcessed is what handling one FHIR request produced.
@@ -123,7 +126,7 @@ func (h *FHIR) Handle(ctx context.Context, at fhir.Endpoint, body []byte) (p FHI
 		return h.refuse(err)
 	}
 	st := h.State()
-	opts := fhir.ExtractOptions{Codes: st.Codes, Location: st.Location}
+	opts := fhir.ExtractOptions{Codes: st.Codes, Location: st.Location, Equations: st.registry()}
 	if h.Patients != nil {
 		opts.LookupPatient = func(id string) (*ppb.Patient, error) { return h.Patients.Patient(ctx, id) }
 	}
@@ -136,7 +139,11 @@ func (h *FHIR) Handle(ctx context.Context, at fhir.Endpoint, body []byte) (p FHI
 	res := make([]fhir.GroupResult, len(evals))
 	for i, e := range evals {
 		res[i].Outcome = e.Outcome
-		res[i].Withdrawals = fhirWithdrawals(st, x, x.Groups[i], e)
+		res[i].Withdrawals = fhirWithdrawals(ctx, h.History, st, x, x.Groups[i], e)
+		for _, w := range res[i].Withdrawals {
+			evals[i].Withdrawals = append(evals[i].Withdrawals, pipeline.WithdrawnEGFR{
+				Equation: w.Equation, AssumedSex: w.AssumedSex, SourceID: w.SourceID, Status: w.Status, Cause: withdrawalCause(w.Status)})
+		}
 	}
 	meta := fhir.Meta{Now: h.now(), SoftwareVersion: h.Version, ConfigHash: st.Snapshot.ConfigHash}
 	var (

@@ -445,8 +445,13 @@ func TestFHIRStatuses(t *testing.T) {
 	require.Contains(t, withdrawn, sent)
 	recs, err := e2.st.Search(ctx, store.Filter{MessageID: "https://northfield-valley-lab.example/lis/bundle|NVL-B-0002"})
 	require.NoError(t, err)
-	require.Len(t, recs, 1)
-	require.Equal(t, pipeline.ReasonWithdrawn, recs[0].SuppressionCode)
+	// One record for the withdrawn input, one for the eGFR it withdraws
+	// (naming the equation, for "audit search --equation").
+	got := map[string]string{}
+	for _, r := range recs {
+		got[r.SuppressionCode] = r.Equation
+	}
+	require.Equal(t, map[string]string{pipeline.ReasonWithdrawn: "", pipeline.ReasonEGFRWithdrawn: "ckd-epi-2021-cr"}, got)
 }
 
 // TestFHIRRefusals checks that refusals and notes reach the OperationOutcome
@@ -1122,11 +1127,14 @@ func TestHL7Withdrawals(t *testing.T) {
 
 		p = e.hl7.Handle(ctx, oruWith("S2", "U", f(obxCreatinine, "D")))
 		require.Equal(t, "AA", p.Code, p.Err)
+		// Under the policy "both" all three forms are withdrawn: the sex
+		// may have been known when an earlier value was sent.
 		require.Equal(t, []egfrRow{
+			{Code: loincCr2021, SubID: "ckd-epi-2021-cr", Status: "D", Equation: "ckd-epi-2021-cr"},
 			{Code: loincCr2021, SubID: "ckd-epi-2021-cr.F", Status: "D", Equation: "ckd-epi-2021-cr"},
 			{Code: loincCr2021, SubID: "ckd-epi-2021-cr.M", Status: "D", Equation: "ckd-epi-2021-cr"},
 		}, withdrawn(egfrRows(t, p.Enriched)))
-		require.Len(t, egfrRows(t, p.Enriched), 2, "nothing but the two withdrawals")
+		require.Len(t, egfrRows(t, p.Enriched), 3, "nothing but the withdrawals")
 	})
 
 	t.Run("corrected to a value that gives no eGFR, then cancelled", func(t *testing.T) {
@@ -1154,8 +1162,9 @@ func TestHL7Withdrawals(t *testing.T) {
 			withdrawn(egfrRows(t, p.Enriched)))
 		recs, err := e.st.Search(ctx, store.Filter{MessageID: "C3"})
 		require.NoError(t, err)
-		require.Len(t, recs, 1, "the cancelled input is recorded")
-		require.Equal(t, pipeline.ReasonWithdrawn, recs[0].SuppressionCode)
+		require.Len(t, recs, 2, "the cancelled input and the eGFR it withdraws are recorded")
+		codes := []string{recs[0].SuppressionCode, recs[1].SuppressionCode}
+		require.ElementsMatch(t, []string{pipeline.ReasonWithdrawn, pipeline.ReasonEGFRWithdrawn}, codes)
 	})
 
 	t.Run("age unknown: the equations of every band", func(t *testing.T) {
@@ -1311,7 +1320,7 @@ func TestFHIRWithdrawals(t *testing.T) {
 		require.Equal(t, http.StatusOK, p.Status, string(p.Body))
 		validateAll(t, e.codec, p.Body)
 		withdrawals := byEquation(egfrObservations(t, p.Body))
-		require.Len(t, withdrawals, 2)
+		require.Len(t, withdrawals, 3, "as one value, as if female, as if male")
 		for _, r := range results {
 			w, ok := withdrawals[r.Equation+"|"+r.Text]
 			require.True(t, ok, r.Text)
@@ -1380,4 +1389,219 @@ func TestFHIRCollectionTimeInLaboratoryZone(t *testing.T) {
 			}
 		})
 	}
+}
+
+// specimenObs is an input Observation of specimenRequest: LOINC code,
+// status, value and UCUM unit, and the members that identify it (a JSON
+// fragment: "identifier", "id"; empty for none).
+type specimenObs struct{ members, code, status, value, unit string }
+
+// specimenRequest builds a transaction Bundle (the sender POSTs every
+// resource) for the invented patient NVL-900003, male, born birthDate, with
+// the given Patient identifiers (a JSON array), Observations collected on
+// the date-only effective.
+func specimenRequest(bundleID, patientIDs, birthDate, effective string, obs ...specimenObs) []byte {
+	var b strings.Builder
+	b.WriteString(`{"resourceType": "Bundle", "type": "transaction",
+	  "identifier": {"system": "https://northfield-valley-lab.example/lis/bundle", "value": "` + bundleID + `"},
+	  "entry": [{"fullUrl": "urn:uuid:00000000-0000-4000-8000-000000000f01", "resource": {"resourceType": "Patient",
+	    "identifier": ` + patientIDs + `, "gender": "male", "birthDate": "` + birthDate + `"},
+	    "request": {"method": "POST", "url": "Patient"}}`)
+	for i, o := range obs {
+		members := ""
+		if o.members != "" {
+			members = o.members + ", "
+		}
+		b.WriteString(fmt.Sprintf(`, {"fullUrl": "urn:uuid:00000000-0000-4000-8000-%012x", "resource": {"resourceType": "Observation", %s"status": "%s",
+		  "code": {"coding": [{"system": "http://loinc.org", "code": "%s"}]},
+		  "subject": {"reference": "urn:uuid:00000000-0000-4000-8000-000000000f01"}, "effectiveDateTime": "%s",
+		  "valueQuantity": {"value": %s, "unit": "%s", "system": "http://unitsofmeasure.org", "code": "%s"}},
+		  "request": {"method": "POST", "url": "Observation"}}`, 0xf10+i, members, o.status, o.code, effective, o.value, o.unit, o.unit))
+	}
+	b.WriteString(`]}`)
+	return []byte(b.String())
+}
+
+// forwardedRequests returns the request (method and url) of each entry of
+// a forwarded transaction whose resource is an Observation with the given
+// LOINC code.
+func forwardedRequests(t *testing.T, fw []byte, loinc string) []string {
+	t.Helper()
+	var b struct {
+		Entry []struct {
+			Resource struct {
+				ResourceType string
+				Code         struct{ Coding []struct{ Code string } }
+			}
+			Request struct{ Method, URL string }
+		}
+	}
+	require.NoError(t, json.Unmarshal(fw, &b))
+	var out []string
+	for _, e := range b.Entry {
+		r := e.Resource
+		if r.ResourceType == "Observation" && len(r.Code.Coding) > 0 && r.Code.Coding[0].Code == loinc {
+			out = append(out, e.Request.Method+" "+e.Request.URL)
+		}
+	}
+	return out
+}
+
+const (
+	mrnSystem    = "https://northfield-valley-lab.example/mrn"
+	lisPatSystem = "https://northfield-valley-lab.example/lis/patient"
+	resultSystem = "https://northfield-valley-lab.example/lis/result"
+)
+
+func identifierJSON(pairs ...string) string {
+	var parts []string
+	for i := 0; i+1 < len(pairs); i += 2 {
+		parts = append(parts, `{"system": "`+pairs[i]+`", "value": "`+pairs[i+1]+`"}`)
+	}
+	return "[" + strings.Join(parts, ", ") + "]"
+}
+
+// TestFHIRSpecimenIdentity: two creatinine specimens of one patient with
+// the same date-only collection time, in separate requests, get distinct
+// eGFR ids; an entered-in-error on one withdraws only its own eGFR; the
+// order of identifiers does not change any id.
+func TestFHIRSpecimenIdentity(t *testing.T) {
+	ctx := context.Background()
+	const day = "2024-06-03"
+	patient := identifierJSON(mrnSystem, "NVL-900003", lisPatSystem, "P-3")
+	swapped := identifierJSON(lisPatSystem, "P-3", mrnSystem, "NVL-900003")
+	cr := func(identifier, status string) specimenObs {
+		return specimenObs{`"identifier": ` + identifier, "2160-0", status, "1.0", "mg/dL"}
+	}
+	a := identifierJSON(resultSystem, "R-0603-01", "https://northfield-valley-lab.example/lis/specimen", "S-1")
+	aSwapped := identifierJSON("https://northfield-valley-lab.example/lis/specimen", "S-1", resultSystem, "R-0603-01")
+	b := identifierJSON(resultSystem, "R-0603-02")
+
+	e := newEnv(t, withPolicy("nkf-asn-2021", ""), forwarding)
+	post := func(body []byte) []egfrObs {
+		t.Helper()
+		p := e.h.Handle(ctx, fhir.EndpointBundle, body)
+		require.Equal(t, http.StatusOK, p.Status, string(p.Body))
+		validateAll(t, e.codec, p.Body)
+		validateAll(t, e.codec, p.Forwarded)
+		return egfrObservations(t, p.Body)
+	}
+	first := post(specimenRequest("I1", patient, "1970-03-10", day, cr(a, "final")))
+	second := post(specimenRequest("I2", patient, "1970-03-10", day, cr(b, "final")))
+	require.Len(t, first, 1)
+	require.Len(t, second, 1)
+	require.NotEqual(t, first[0].ID, second[0].ID, "two specimens, two eGFRs")
+
+	cases := []struct {
+		name     string
+		body     []byte
+		want     string // id of the single eGFR answered
+		status   string
+		hasValue bool
+	}{
+		{"identifiers of patient and result in another order", specimenRequest("I3", swapped, "1970-03-10", day, cr(aSwapped, "final")), first[0].ID, "final", true},
+		{"the second specimen resent", specimenRequest("I4", patient, "1970-03-10", day, cr(b, "final")), second[0].ID, "final", true},
+		{"the first entered in error: its own eGFR withdrawn", specimenRequest("I5", patient, "1970-03-10", day, cr(a, "entered-in-error")), first[0].ID, "entered-in-error", false},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			got := post(tc.body)
+			require.Len(t, got, 1, "one eGFR, the other specimen's is untouched")
+			require.Equal(t, tc.want, got[0].ID)
+			require.Equal(t, tc.status, got[0].Status)
+			require.Equal(t, tc.hasValue, got[0].HasValue)
+		})
+	}
+}
+
+// TestFHIRCorrectionForwardedByIdentifier: an Observation without a
+// logical id is forwarded as a conditional update on its identifier
+// (FHIR R4 http.html#cond-update; system and value query-escaped), so that
+// its corrected version replaces it downstream; the eGFR keeps its id and
+// becomes corrected.
+func TestFHIRCorrectionForwardedByIdentifier(t *testing.T) {
+	ctx := context.Background()
+	e := newEnv(t, withPolicy("nkf-asn-2021", ""), forwarding)
+	patient := identifierJSON(mrnSystem, "NVL-900004")
+	cr := func(status, value string) specimenObs {
+		return specimenObs{`"identifier": ` + identifierJSON(resultSystem, "R 0603/7"), "2160-0", status, value, "mg/dL"}
+	}
+	wantURL := "PUT Observation?identifier=https%3A%2F%2Fnorthfield-valley-lab.example%2Flis%2Fresult|R+0603%2F7"
+	var firstID string
+	for i, tc := range []struct{ status, value string }{{"final", "1.0"}, {"corrected", "1.2"}} {
+		p := e.h.Handle(ctx, fhir.EndpointBundle, specimenRequest(fmt.Sprintf("K%d", i), patient, "1970-03-10", "2024-06-03", cr(tc.status, tc.value)))
+		require.Equal(t, http.StatusOK, p.Status, string(p.Body))
+		validateAll(t, e.codec, p.Forwarded)
+		require.Equal(t, []string{wantURL}, forwardedRequests(t, p.Forwarded, "2160-0"), tc.status)
+		require.NotContains(t, string(p.Forwarded), "ifNoneExist")
+		got := egfrObservations(t, p.Body)
+		require.Len(t, got, 1)
+		require.Equal(t, tc.status, got[0].Status)
+		if firstID == "" {
+			firstID = got[0].ID
+		}
+		require.Equal(t, firstID, got[0].ID, "the corrected eGFR replaces the first")
+		require.Contains(t, string(p.Forwarded), `"url":"Observation/`+firstID+`"`)
+	}
+}
+
+// TestFHIRHeightStatus: the eGFR of a child follows the status of the
+// height it was calculated from. A boy born 2012-03-05, collected on his
+// 12th birthday: the nkf-asn-2021 preset uses CKiD U25 creatinine.
+func TestFHIRHeightStatus(t *testing.T) {
+	ctx := context.Background()
+	patient := identifierJSON(mrnSystem, "NVL-900005")
+	cr := specimenObs{`"identifier": ` + identifierJSON(resultSystem, "R-CR-5"), "2160-0", "final", "0.65", "mg/dL"}
+	height := func(status, value string) specimenObs {
+		return specimenObs{`"identifier": ` + identifierJSON(resultSystem, "R-HT-5"), "8302-2", status, value, "cm"}
+	}
+	t.Run("corrected height, corrected eGFR with the same id", func(t *testing.T) {
+		e := newEnv(t, withPolicy("nkf-asn-2021", ""), forwarding)
+		var firstID string
+		for _, tc := range []struct{ status, value, want string }{
+			{"final", "140", "final"}, {"corrected", "150", "corrected"},
+		} {
+			p := e.h.Handle(ctx, fhir.EndpointBundle, specimenRequest("H-"+tc.status, patient, "2012-03-05", "2024-03-05", cr, height(tc.status, tc.value)))
+			require.Equal(t, http.StatusOK, p.Status, string(p.Body))
+			validateAll(t, e.codec, p.Body)
+			got := egfrObservations(t, p.Body)
+			require.Len(t, got, 1)
+			require.Equal(t, "ckid-u25-cr", got[0].Equation)
+			require.Equal(t, tc.want, got[0].Status, "height %s", tc.status)
+			if firstID == "" {
+				firstID = got[0].ID
+			}
+			require.Equal(t, firstID, got[0].ID)
+			a := parseAnswer(t, p.Body)
+			for _, en := range a.Entry {
+				if en.Resource.ID == firstID {
+					require.Len(t, en.Resource.DerivedFrom, 2, "creatinine and height")
+				}
+			}
+		}
+		// Pierce et al., Kidney Int 2021, and the CKiD study's reference
+		// code (ckidstudy/CKiD_U25): male, 12 ≤ age < 18, K = 39.0 ×
+		// 1.045^(age − 12), 39.0 at exactly 12 years; by hand
+		// 39.0 × 1.40 m / 0.65 mg/dL = 84.0, and with the corrected
+		// height 39.0 × 1.50 m / 0.65 mg/dL = 90.0.
+		for msg, want := range map[string]float64{"H-final": 84.0, "H-corrected": 90.0} {
+			recs, err := e.st.Search(ctx, store.Filter{MessageID: "https://northfield-valley-lab.example/lis/bundle|" + msg})
+			require.NoError(t, err)
+			require.Len(t, recs, 1)
+			require.NotNil(t, recs[0].Exact)
+			require.InDelta(t, want, *recs[0].Exact, 1e-9, msg)
+		}
+	})
+	t.Run("height entered in error withdraws the eGFR made with it", func(t *testing.T) {
+		e := newEnv(t, withPolicy("nkf-asn-2021", ""))
+		p := e.h.Handle(ctx, fhir.EndpointBundle, specimenRequest("E1", patient, "2012-03-05", "2024-03-05", cr, height("final", "150")))
+		require.Equal(t, http.StatusOK, p.Status, string(p.Body))
+		first := egfrObservations(t, p.Body)
+		require.Len(t, first, 1)
+		p = e.h.Handle(ctx, fhir.EndpointBundle, specimenRequest("E2", patient, "2012-03-05", "2024-03-05", cr, height("entered-in-error", "150")))
+		require.Equal(t, http.StatusOK, p.Status, string(p.Body))
+		validateAll(t, e.codec, p.Body)
+		require.Equal(t, []egfrObs{{ID: first[0].ID, Status: "entered-in-error", Equation: "ckid-u25-cr", Code: loincGeneric, Text: first[0].Text}},
+			egfrObservations(t, p.Body))
+	})
 }

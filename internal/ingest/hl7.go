@@ -28,6 +28,9 @@ type HL7 struct {
 	Now     func() time.Time
 	// Timeout bounds recording one message (default DefaultTimeout).
 	Timeout time.Duration
+	// History, when set, lets a correction of one input withdraw eGFRs
+	// made earlier with another input of the same specimen.
+	History HistorySource
 
 	seq atomic.Uint64
 }
@@ -116,7 +119,14 @@ func (h *HL7) Handle(ctx context.Context, payload []byte) (p Processed) {
 		o := e.Outcome
 		outcomes[index[i]] = &o
 	}
-	enriched, err := oru.Enrich(outcomes, hl7v2.EnrichOptions{Withdrawals: hl7Withdrawals(st, oru, evals, index)})
+	withdrawals := hl7Withdrawals(ctx, h.History, st, oru, pm, evals, index)
+	for i := range evals {
+		for _, w := range withdrawals[index[i]] {
+			evals[i].Withdrawals = append(evals[i].Withdrawals, pipeline.WithdrawnEGFR{
+				Equation: w.Equation, AssumedSex: w.AssumedSex, SourceID: w.SourceID, Status: w.Status, Cause: withdrawalCause(w.Status)})
+		}
+	}
+	enriched, err := oru.Enrich(outcomes, hl7v2.EnrichOptions{Withdrawals: withdrawals})
 	if err != nil {
 		h.logger().Error("hl7v2 enrichment failed", "err", err)
 		return h.refuse(msg, hl7v2.AckError, hl7v2.ErrorDetail{Code: hl7v2.ErrCodeApplication, Text: "internal error while adding eGFR; resend later"}, err)

@@ -6,6 +6,8 @@
 package ingest
 
 import (
+	"context"
+	"filtrate/store"
 	"fmt"
 	"slices"
 	"time"
@@ -158,12 +160,24 @@ func CodeMap(cfg *config.Config) (*hl7v2.CodeMap, error) {
 //
 // The eGFRs that can derive from an input are those of the policy band at
 // the patient's age as calc computed it (every band when the age is
-// unknown) whose equation uses the input's analyte and whose every analyte
-// the group reports in some status (otherwise that eGFR can never have
-// been sent). A sex-dependent equation, for a patient whose sex is unknown
-// under the policy "both", is withdrawn as calculated as if female and as
-// if male; otherwise as one value. An eGFR the outcome reports again is
-// never withdrawn: the new value replaces it. When two inputs withdraw the
+// unknown) whose equation uses the input's analyte, height and weight
+// included (Equation.Inputs), and whose other measured inputs (creatinine,
+// cystatin C) are in this message or, for a message that corrects or
+// deletes one input alone, in the patient's result history for the same
+// specimen time: so a cystatin C corrected alone withdraws the combined
+// eGFR made with it earlier, while a creatinine-only report withdraws no
+// combined eGFR that was never made. Under the policy "both", a
+// sex-dependent equation is withdrawn in all three forms (as one value, as
+// if female, as if male), since the patient's sex may have become known or
+// unknown since. An eGFR the outcome reports again is never withdrawn: the
+// new value replaces it.
+//
+// This is decided from the message and the result history, not from a
+// record of each eGFR sent, so it may still name an eGFR that was never
+// sent (receivers must accept a withdrawal of an observation they do not
+// hold), and it does not withdraw a preliminary eGFR whose input later
+// arrives final but uncomputable, nor an eGFR of an age band a corrected
+// date of birth no longer gives. When two inputs withdraw the
 // same eGFR (creatinine and cystatin C both deleted), it is withdrawn once:
 // for the input's own withdrawal or cancellation rather than for a
 // correction, and otherwise for the later input.
@@ -178,8 +192,8 @@ const (
 	inputCorrected            // HL7 C; FHIR corrected or amended
 )
 
-// groupInput is a creatinine, cystatin C or urine creatinine input of a
-// group, in any status.
+// groupInput is an input of a group an eGFR may be calculated from
+// (inputAnalyte), in any status.
 type groupInput struct {
 	SourceID string
 	Analyte  calc.Analyte
@@ -194,9 +208,14 @@ type withdrawal struct {
 	SourceID, Equation, EquationName, LOINC, LOINCName, Unit, AssumedSex, Status string
 }
 
-// primaryAnalyte reports the analytes an eGFR is calculated from.
-func primaryAnalyte(a calc.Analyte) bool {
-	return a == calc.Creatinine || a == calc.CystatinC || a == calc.UrineCreatinine
+// inputAnalyte reports the analytes an eGFR may be calculated from,
+// height and weight included.
+func inputAnalyte(a calc.Analyte) bool {
+	switch a {
+	case calc.Creatinine, calc.CystatinC, calc.UrineCreatinine, calc.Height, calc.Weight, calc.UrineVolume, calc.CollectionTime:
+		return true
+	}
+	return false
 }
 
 func (st *State) registry() *calc.Registry {
@@ -209,7 +228,10 @@ func (st *State) registry() *calc.Registry {
 // planWithdrawals applies the withdrawal rules to one evaluated group: req
 // is the request as evaluated (policy and sex), out its outcome, inputs
 // the group's inputs in message order.
-func planWithdrawals(reg *calc.Registry, req calc.Request, out calc.Outcome, inputs []groupInput) []withdrawal {
+//
+// present reports whether a measured input (creatinine, cystatin C, urine
+// creatinine) of this specimen is known, in the message or the history.
+func planWithdrawals(reg *calc.Registry, req calc.Request, out calc.Outcome, inputs []groupInput, present func(calc.Analyte) bool) []withdrawal {
 	pol := req.Policy
 	bands := pol.Bands
 	if out.AgeYears != nil {
@@ -231,10 +253,6 @@ func planWithdrawals(reg *calc.Registry, req calc.Request, out calc.Outcome, inp
 			}
 		}
 	}
-	reported := map[calc.Analyte]bool{}
-	for _, in := range inputs {
-		reported[in.Analyte] = true
-	}
 	type key struct{ equation, sex string }
 	computed := map[key]bool{}
 	for _, r := range out.Results {
@@ -248,13 +266,12 @@ func planWithdrawals(reg *calc.Registry, req calc.Request, out calc.Outcome, inp
 			continue
 		}
 		for _, e := range eqs {
-			uses := e.Uses()
-			if !slices.Contains(uses, in.Analyte) || !allReported(uses, reported) {
+			if !slices.Contains(e.Inputs(), in.Analyte) || !allPresent(e.Uses(), present) {
 				continue
 			}
 			sexes := []string{""}
-			if e.Needs.Has(calc.NeedSex) && req.Sex == calc.SexUnknown && pol.SexUnknown == calc.SexRuleBoth {
-				sexes = []string{calc.SexFemale.String(), calc.SexMale.String()}
+			if e.Needs.Has(calc.NeedSex) && pol.SexUnknown == calc.SexRuleBoth {
+				sexes = []string{"", calc.SexFemale.String(), calc.SexMale.String()}
 			}
 			for _, sex := range sexes {
 				k := key{e.ID, sex}
@@ -282,25 +299,58 @@ func planWithdrawals(reg *calc.Registry, req calc.Request, out calc.Outcome, inp
 	return ws
 }
 
-func allReported(uses []calc.Analyte, reported map[calc.Analyte]bool) bool {
+func allPresent(uses []calc.Analyte, present func(calc.Analyte) bool) bool {
 	for _, a := range uses {
-		if !reported[a] {
+		if !present(a) {
 			return false
 		}
 	}
 	return true
 }
 
+// HistorySource reads the result history (store.Store satisfies it).
+type HistorySource interface {
+	History(ctx context.Context, patientID, analyte string, since time.Time) ([]store.HistoryPoint, error)
+}
+
+// presence returns the "present" function of planWithdrawals for one group:
+// an analyte is present when the group has an input of it (in any status),
+// or when the patient's history holds a value of it for the same
+// collection time. A history lookup that fails counts as present: a
+// withdrawal too many is safer than a stale eGFR.
+func presence(ctx context.Context, hist HistorySource, patientID string, at time.Time, inputs []groupInput) func(calc.Analyte) bool {
+	return func(a calc.Analyte) bool {
+		for _, in := range inputs {
+			if in.Analyte == a {
+				return true
+			}
+		}
+		if hist == nil || patientID == "" || at.IsZero() || (a != calc.Creatinine && a != calc.CystatinC) {
+			return false
+		}
+		pts, err := hist.History(ctx, patientID, string(a), at.Add(-time.Second))
+		if err != nil {
+			return true
+		}
+		for _, p := range pts {
+			if p.CollectedAt.Equal(at) {
+				return true
+			}
+		}
+		return false
+	}
+}
+
 // hl7Withdrawals returns, per order of the message, the eGFR observations
 // to withdraw (hl7v2.EnrichOptions.Withdrawals). index maps each
 // evaluated group to its order, as neutral returns it.
-func hl7Withdrawals(st *State, oru *hl7v2.ORU, evals []pipeline.Evaluated, index []int) [][]hl7v2.Withdrawal {
+func hl7Withdrawals(ctx context.Context, hist HistorySource, st *State, oru *hl7v2.ORU, pm pipeline.Message, evals []pipeline.Evaluated, index []int) [][]hl7v2.Withdrawal {
 	reg := st.registry()
 	out := make([][]hl7v2.Withdrawal, len(oru.Orders))
 	for i, e := range evals {
 		var inputs []groupInput
 		for _, obs := range oru.Orders[index[i]].Observations {
-			if !primaryAnalyte(obs.Analyte) {
+			if !inputAnalyte(obs.Analyte) {
 				continue
 			}
 			in := groupInput{SourceID: obs.SourceID, Analyte: obs.Analyte}
@@ -316,7 +366,12 @@ func hl7Withdrawals(st *State, oru *hl7v2.ORU, evals []pipeline.Evaluated, index
 			}
 			inputs = append(inputs, in)
 		}
-		for _, w := range planWithdrawals(reg, e.Request, e.Outcome, inputs) {
+		pid := e.Group.PatientID
+		if pid == "" {
+			pid = pm.PatientID
+		}
+		present := presence(ctx, hist, pid, e.Request.CollectedAt, inputs)
+		for _, w := range planWithdrawals(reg, e.Request, e.Outcome, inputs, present) {
 			out[index[i]] = append(out[index[i]], hl7v2.Withdrawal(w))
 		}
 	}
@@ -325,14 +380,14 @@ func hl7Withdrawals(st *State, oru *hl7v2.ORU, evals []pipeline.Evaluated, index
 
 // fhirWithdrawals returns the eGFR Observations to withdraw for one group
 // (fhir.GroupResult.Withdrawals).
-func fhirWithdrawals(st *State, x *fhir.Extraction, g *fhir.Group, e pipeline.Evaluated) []fhir.Withdrawal {
+func fhirWithdrawals(ctx context.Context, hist HistorySource, st *State, x *fhir.Extraction, g *fhir.Group, e pipeline.Evaluated) []fhir.Withdrawal {
 	mine := map[*fhir.Observation]bool{}
 	for _, o := range append(append([]*fhir.Observation(nil), g.Inputs...), g.Withdrawn...) {
 		mine[o] = true
 	}
 	var inputs []groupInput
 	for _, o := range x.Inputs { // request order
-		if !mine[o] || !primaryAnalyte(o.Analyte) {
+		if !mine[o] || !inputAnalyte(o.Analyte) {
 			continue
 		}
 		in := groupInput{SourceID: o.SourceID, Analyte: o.Analyte}
@@ -347,8 +402,25 @@ func fhirWithdrawals(st *State, x *fhir.Extraction, g *fhir.Group, e pipeline.Ev
 		inputs = append(inputs, in)
 	}
 	var out []fhir.Withdrawal
-	for _, w := range planWithdrawals(st.registry(), e.Request, e.Outcome, inputs) {
+	present := presence(ctx, hist, e.Group.PatientID, e.Request.CollectedAt, inputs)
+	for _, w := range planWithdrawals(st.registry(), e.Request, e.Outcome, inputs, present) {
 		out = append(out, fhir.Withdrawal(w))
 	}
 	return out
+}
+
+// withdrawalCause explains a withdrawal status for the audit trail.
+func withdrawalCause(status string) string {
+	switch status {
+	case "X", "cancelled":
+		return "the result it was calculated from could not be obtained (cancelled)"
+	case "W":
+		return "the result it was calculated from was posted as wrong"
+	case "D":
+		return "the result it was calculated from was deleted, or corrected to a value that gives no eGFR"
+	case "entered-in-error":
+		return "the result it was calculated from was entered in error, or corrected to a value that gives no eGFR"
+	default:
+		return "the result it was calculated from was withdrawn"
+	}
 }

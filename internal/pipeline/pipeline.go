@@ -90,6 +90,18 @@ type Evaluated struct {
 	Group   Group
 	Request calc.Request
 	Outcome calc.Outcome
+	// Withdrawals are the eGFRs sent earlier that this message withdraws
+	// (filled by the transport after Evaluate); each gets an audit record.
+	Withdrawals []WithdrawnEGFR
+}
+
+// WithdrawnEGFR is one eGFR observation a message withdraws.
+type WithdrawnEGFR struct {
+	Equation   string
+	AssumedSex string
+	SourceID   string // the input whose status or correction withdraws it
+	Status     string // the transport's status for the withdrawal
+	Cause      string // plain-language reason, no patient data
 }
 
 // Output is an enriched message to forward.
@@ -179,6 +191,9 @@ func RawHash(raw []byte) string {
 const (
 	// ReasonWithdrawn marks an input withdrawn by its status.
 	ReasonWithdrawn = "input-withdrawn"
+	// ReasonEGFRWithdrawn marks an eGFR sent earlier that this message
+	// withdraws (its input was corrected, deleted or cancelled).
+	ReasonEGFRWithdrawn = "egfr-withdrawn"
 )
 
 // Records builds the audit records for a processed message: one per
@@ -225,6 +240,17 @@ func Records(msg Message, evals []Evaluated, snap *Snapshot, version, outputMess
 			rec.Equation = r.Equation
 			rec.Steps = json.RawMessage("[]")
 			rec.SuppressionCode, rec.SuppressionText = string(r.Code), r.Message
+			recs = append(recs, rec)
+		}
+		for _, w := range e.Withdrawals {
+			rec := base
+			rec.Equation = w.Equation
+			rec.Steps = json.RawMessage("[]")
+			rec.SuppressionCode = ReasonEGFRWithdrawn
+			rec.SuppressionText = fmt.Sprintf("eGFR %s withdrawn (status %s): %s", w.Equation, w.Status, w.Cause)
+			if w.AssumedSex != "" {
+				rec.Comments = []string{"assumed sex: " + w.AssumedSex}
+			}
 			recs = append(recs, rec)
 		}
 		for _, w := range e.Group.Withdrawn {
