@@ -483,20 +483,20 @@ func (e *enricher) withdrawalBlock(ord *Order, w Withdrawal, sub string, input *
 func (e *enricher) obx(ord *Order, valueType string, r calc.Result, sub, value, unit, flag, status string) *Segment {
 	d := e.d
 	s := NewSegment(d, "OBX",
-		"",                                       // 1 set ID, set when renumbering
-		valueType,                                // 2 value type
-		d.Components(r.LOINC, r.LOINCName, "LN"), // 3 observation identifier
-		d.EncodeText(sub),                        // 4 observation sub-ID
-		value,                                    // 5 observation value
-		d.Components(unit, "", "UCUM"),           // 6 units
-		"",                                       // 7 reference range
-		d.EncodeText(flag),                       // 8 abnormal flags
-		"", "",                                   // 9, 10
+		"",        // 1 set ID, set when renumbering
+		valueType, // 2 value type
+		d.Components(r.LOINC, e.text(r.LOINCName), "LN"), // 3 observation identifier
+		d.EncodeText(sub),              // 4 observation sub-ID
+		value,                          // 5 observation value
+		d.Components(unit, "", "UCUM"), // 6 units
+		"",                             // 7 reference range
+		d.EncodeText(flag),             // 8 abnormal flags
+		"", "",                         // 9, 10
 		d.EncodeText(status), // 11 observation result status
 		"", "",               // 12, 13
 		d.EncodeText(ord.CollectedText), // 14 date/time of the observation
 		"", "",                          // 15, 16
-		d.Components(r.Equation, r.EquationName, "L"), // 17 observation method
+		d.Components(r.Equation, e.text(r.EquationName), "L"), // 17 observation method
 	)
 	trimTrailing(s)
 	return s
@@ -504,7 +504,50 @@ func (e *enricher) obx(ord *Order, valueType string, r calc.Result, sub, value, 
 
 func (e *enricher) nte(setID int, text string) *Segment {
 	d := e.d
-	return NewSegment(d, "NTE", strconv.Itoa(setID), d.EncodeText(e.opts.CommentSource), d.EncodeText(text))
+	return NewSegment(d, "NTE", strconv.Itoa(setID), d.EncodeText(e.opts.CommentSource), d.EncodeText(e.text(text)))
+}
+
+// text prepares text filtrate adds for the message's character set: when
+// MSH-18 declares none (which means ASCII, HL7 v2.5.1 section 2.15.9.18)
+// or ASCII, the few non-ASCII characters filtrate's own texts use are
+// written in ASCII and any other is replaced by '?'; a message declaring
+// UNICODE UTF-8 gets the text as it is.
+func (e *enricher) text(s string) string {
+	cs := strings.ToUpper(strings.TrimSpace(e.oru.msg.MSH().Field(18).String()))
+	if cs != "" && cs != "ASCII" {
+		return s
+	}
+	return asciiText(s)
+}
+
+// asciiText folds text to ASCII.
+func asciiText(s string) string {
+	var b strings.Builder
+	for _, r := range s {
+		switch {
+		case r < 0x80:
+			b.WriteRune(r)
+		case r == '–' || r == '—' || r == '−':
+			b.WriteByte('-')
+		case r == '²':
+			b.WriteByte('2')
+		case r == 'µ' || r == 'μ':
+			b.WriteByte('u')
+		case r == '×':
+			b.WriteByte('x')
+		case r == '≥':
+			b.WriteString(">=")
+		case r == '≤':
+			b.WriteString("<=")
+		case r == 'κ':
+			b.WriteString("kappa")
+		case r == 'α':
+			b.WriteString("alpha")
+		default:
+			b.WriteByte('?')
+		}
+	}
+	return b.String()
 }
 
 // build writes the planned insertions into a copy of the message and

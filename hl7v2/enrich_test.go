@@ -512,3 +512,10 @@ func TestEnrichWithdrawalErrors(t *testing.T) {
 	_, err := o.Enrich([]*calc.Outcome{nil}, EnrichOptions{Withdrawals: [][]Withdrawal{nil, nil}})
 	require.Error(t, err, "more withdrawal lists than orders")
 }
+
+// Text filtrate adds is ASCII unless MSH-18 declares UTF-8 (HL7 v2.5.1
+// section 2.15.9.18: an empty MSH-18 means ASCII).
+func TestAddedTextFollowsTheCharacterSet(t *testing.T) {
+	require.Equal(t, "CKD-EPI 2021 creatinine-cystatin C, 1.73 m2, 5 umol/L x 2 >= 1", asciiText("CKD-EPI 2021 creatinine–cystatin C, 1.73 m², 5 µmol/L × 2 ≥ 1"))
+	require.Equal(t, "a?b", asciiText("a€b"))
+}
