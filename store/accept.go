@@ -289,6 +289,9 @@ VALUES (?, ?, ?, ?, ?, ?, ?, ?)`),
 			return Receipt{}, dbErr(fmt.Sprintf("accept: history point %d", i), err)
 		}
 	}
+	if err := s.upsertReported(ctx, tx, sub.Reported, now); err != nil {
+		return Receipt{}, err
+	}
 	return rc, nil
 }
 
@@ -420,6 +423,20 @@ func normalize(sub Submission, softwareVersion string) (*Submission, error) {
 		m.Payload = append([]byte(nil), m.Payload...)
 		out.Outbox = append(out.Outbox, m)
 	}
+	for i, r := range sub.Reported {
+		if r.Key == "" || r.GroupKey == "" {
+			return nil, fmt.Errorf("%w: reported observation %d needs Key and GroupKey", ErrInvalid, i)
+		}
+		for _, f := range []struct{ name, value string }{
+			{"Key", r.Key}, {"GroupKey", r.GroupKey}, {"Equation", r.Equation}, {"AssumedSex", r.AssumedSex},
+			{"ExternalID", r.ExternalID}, {"MessageID", r.MessageID},
+		} {
+			if err := checkText(f.name, f.value); err != nil {
+				return nil, fmt.Errorf("%w: reported observation %d: %s", ErrInvalid, i, err)
+			}
+		}
+		out.Reported = append(out.Reported, r)
+	}
 	for i, p := range sub.History {
 		switch {
 		case p.PatientID == "":
@@ -497,4 +514,26 @@ func (s *sqlStore) Close() error {
 		}
 	})
 	return s.closeErr
+}
+
+// upsertReported records the eGFR observations a submission sends or
+// withdraws. One statement per row: two submissions of one batch may touch
+// the same observation, which a multi-row upsert cannot do.
+func (s *sqlStore) upsertReported(ctx context.Context, tx *sql.Tx, rs []Reported, now time.Time) error {
+	for i, r := range rs {
+		active := 0
+		if r.Active {
+			active = 1
+		}
+		if _, err := tx.ExecContext(ctx, s.d.q(`INSERT INTO reported_observations
+(obs_key, group_key, equation, assumed_sex, external_id, active, message_id, updated_at)
+VALUES (?, ?, ?, ?, ?, ?, ?, ?)
+ON CONFLICT (obs_key) DO UPDATE SET group_key = excluded.group_key, equation = excluded.equation,
+assumed_sex = excluded.assumed_sex, external_id = excluded.external_id, active = excluded.active,
+message_id = excluded.message_id, updated_at = excluded.updated_at`),
+			r.Key, r.GroupKey, r.Equation, r.AssumedSex, r.ExternalID, active, r.MessageID, s.d.t(now)); err != nil {
+			return dbErr(fmt.Sprintf("accept: reported observation %d", i), err)
+		}
+	}
+	return nil
 }

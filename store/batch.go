@@ -133,6 +133,13 @@ func (s *sqlStore) commitFast(ctx context.Context, subs []*Submission) (_ []acce
 	if err := s.insertRows(ctx, tx, `INSERT INTO history_points (dedup_key, patient_id, analyte, value, unit, collected_at, message_id, recorded_at) VALUES `, 8, histRows, ``, nil); err != nil {
 		return nil, dbErr("accept: history", err)
 	}
+	for _, sub := range subs { // in submission order: a later one wins
+		if inserted[sub.DedupKey] {
+			if err := s.upsertReported(ctx, tx, sub.Reported, now); err != nil {
+				return nil, err
+			}
+		}
+	}
 	if head != start {
 		if _, err := tx.ExecContext(ctx, s.d.q(`UPDATE chain_head SET last_id = ?, last_hash = ?`), head.LastID, head.LastHash); err != nil {
 			return nil, dbErr("accept: update chain head", err)

@@ -227,3 +227,30 @@ func (s *sqlStore) Ready(ctx context.Context) error {
 	}
 	return ready(ctx, s.prov)
 }
+
+// ReportedIn implements Store.
+func (s *sqlStore) ReportedIn(ctx context.Context, groupKey string) ([]Reported, error) {
+	if s.closed.Load() {
+		return nil, ErrClosed
+	}
+	rows, err := s.r.QueryContext(ctx, s.d.q(`SELECT obs_key, group_key, equation, assumed_sex, external_id, active, message_id, updated_at
+FROM reported_observations WHERE group_key = ? ORDER BY obs_key`), groupKey)
+	if err != nil {
+		return nil, dbErr("read reported observations", err)
+	}
+	defer rows.Close()
+	var out []Reported
+	for rows.Next() {
+		var r Reported
+		var active int
+		if err := rows.Scan(&r.Key, &r.GroupKey, &r.Equation, &r.AssumedSex, &r.ExternalID, &active, &r.MessageID, dbTime{&r.UpdatedAt}); err != nil {
+			return nil, dbErr("read reported observations", err)
+		}
+		r.Active = active == 1
+		out = append(out, r)
+	}
+	if err := rows.Err(); err != nil {
+		return nil, dbErr("read reported observations", err)
+	}
+	return out, nil
+}

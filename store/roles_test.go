@@ -86,9 +86,13 @@ func TestRestrictedRole(t *testing.T) {
 			{Destination: "lis", PartitionKey: "P", Payload: []byte("one")},
 			{Destination: "lis", PartitionKey: "Q", Payload: []byte("two")},
 		},
-		History: []store.HistoryPoint{{PatientID: "DEMO-R", Analyte: "creatinine", Value: 90, CollectedAt: clk.now()}},
+		History:  []store.HistoryPoint{{PatientID: "DEMO-R", Analyte: "creatinine", Value: 90, CollectedAt: clk.now()}},
+		Reported: []store.Reported{{Key: "g|cr", GroupKey: "g", Equation: "ckd-epi-2021-cr", Active: true}},
 	})
 	require.NoError(t, err)
+	_, err = st.Accept(ctx, store.Submission{DedupKey: "role-2",
+		Reported: []store.Reported{{Key: "g|cr", GroupKey: "g", Equation: "ckd-epi-2021-cr", Active: false}}})
+	require.NoError(t, err, "the daemon role updates the state of a reported observation")
 	items, err := st.Claim(ctx, "lis", "w", 10, time.Minute)
 	require.NoError(t, err)
 	require.Len(t, items, 2)

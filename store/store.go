@@ -130,6 +130,9 @@ type Store interface {
 	// History returns the result-history points of one patient and analyte
 	// collected at or after since, oldest first.
 	History(ctx context.Context, patientID, analyte string, since time.Time) ([]HistoryPoint, error)
+	// ReportedIn returns the eGFR observations last sent or withdrawn for
+	// a specimen or order (Submission.Reported), by Key.
+	ReportedIn(ctx context.Context, groupKey string) ([]Reported, error)
 
 	// Ping checks that the database answers.
 	Ping(ctx context.Context) error
@@ -155,6 +158,29 @@ type Submission struct {
 	Outbox []OutboxMessage
 	// History are the result points to remember for the patient.
 	History []HistoryPoint
+	// Reported are the eGFR observations this message sends (Active) or
+	// withdraws (not Active); each replaces the state kept under its Key.
+	Reported []Reported
+}
+
+// Reported is the state of one eGFR observation as last sent downstream.
+type Reported struct {
+	// Key is the observation's identity at the receiver (for HL7 v2 the
+	// order, OBX-3 and OBX-4; for FHIR the resource id). Required.
+	Key string
+	// GroupKey names the specimen or order it belongs to. Required.
+	GroupKey string
+	// Equation and AssumedSex identify the value.
+	Equation   string
+	AssumedSex string
+	// ExternalID is the receiver's id (FHIR resource id); "" for HL7 v2.
+	ExternalID string
+	// Active is false once the observation was withdrawn.
+	Active bool
+	// MessageID is the message that last sent or withdrew it.
+	MessageID string
+	// UpdatedAt is set by the store.
+	UpdatedAt time.Time
 }
 
 // Receipt tells the caller what Accept recorded.

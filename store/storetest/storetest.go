@@ -21,6 +21,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
 	"filtrate/store"
@@ -99,6 +100,7 @@ func Run(t *testing.T, b Backend) {
 		{"TwoStoresClaimConcurrently", s.twoStoresClaim},
 		{"OutboxStats", s.outboxStats},
 		{"History", s.history},
+		{"Reported", s.reported},
 		{"AppendOnly", s.appendOnly},
 		{"TamperDetection", s.tamper},
 		{"ReadyPingClose", s.readyPingClose},
@@ -1017,4 +1019,68 @@ func (s suite) readyPingClose(t *testing.T) {
 	require.ErrorIs(t, err, store.ErrClosed)
 	require.ErrorIs(t, st.Ping(t.Context()), store.ErrClosed)
 	require.NoError(t, st.Close())
+}
+
+// reported checks the state of eGFR observations sent downstream: the
+// latest submission touching a key wins, in one batch too, and a duplicate
+// changes nothing.
+func (s suite) reported(t *testing.T) {
+	st, clk, _ := s.fresh(t)
+	ctx := t.Context()
+	rep := func(key, group, eq string, active bool, msg string) store.Reported {
+		return store.Reported{Key: key, GroupKey: group, Equation: eq, Active: active, MessageID: msg}
+	}
+	_, err := st.Accept(ctx, store.Submission{DedupKey: "r1", Reported: []store.Reported{
+		rep("g1|cr", "g1", "ckd-epi-2021-cr", true, "M1"), rep("g1|crcys", "g1", "ckd-epi-2021-crcys", true, "M1"),
+		rep("g2|cr", "g2", "ckd-epi-2021-cr", true, "M1"),
+	}})
+	require.NoError(t, err)
+	clk.Advance(time.Minute)
+	_, err = st.Accept(ctx, store.Submission{DedupKey: "r2", Reported: []store.Reported{
+		rep("g1|crcys", "g1", "ckd-epi-2021-crcys", false, "M2"),
+	}})
+	require.NoError(t, err)
+	got, err := st.ReportedIn(ctx, "g1")
+	require.NoError(t, err)
+	require.Len(t, got, 2)
+	require.Equal(t, "g1|cr", got[0].Key)
+	require.True(t, got[0].Active)
+	require.Equal(t, "g1|crcys", got[1].Key)
+	require.False(t, got[1].Active, "withdrawn by the later submission")
+	require.Equal(t, "M2", got[1].MessageID)
+	require.Equal(t, clk.Now().Truncate(time.Microsecond), got[1].UpdatedAt)
+
+	// A duplicate of r1 does not revive the withdrawn observation.
+	rc, err := st.Accept(ctx, store.Submission{DedupKey: "r1", Reported: []store.Reported{
+		rep("g1|crcys", "g1", "ckd-epi-2021-crcys", true, "M1"),
+	}})
+	require.NoError(t, err)
+	require.True(t, rc.Duplicate)
+	got, err = st.ReportedIn(ctx, "g1")
+	require.NoError(t, err)
+	require.False(t, got[1].Active)
+
+	// Concurrent submissions (one group commit) touching one key: no
+	// error, and one of them wins.
+	var wg sync.WaitGroup
+	for i := range 8 {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			_, err := st.Accept(ctx, store.Submission{DedupKey: fmt.Sprintf("c%d", i), Reported: []store.Reported{
+				rep("g3|cr", "g3", "ckd-epi-2021-cr", i%2 == 0, fmt.Sprintf("C%d", i)),
+			}})
+			assert.NoError(t, err)
+		}()
+	}
+	wg.Wait()
+	got, err = st.ReportedIn(ctx, "g3")
+	require.NoError(t, err)
+	require.Len(t, got, 1)
+
+	_, err = st.Accept(ctx, store.Submission{DedupKey: "bad", Reported: []store.Reported{{Key: "k"}}})
+	require.ErrorIs(t, err, store.ErrInvalid)
+	none, err := st.ReportedIn(ctx, "nothing")
+	require.NoError(t, err)
+	require.Empty(t, none)
 }
