@@ -72,6 +72,9 @@ type Withdrawal struct {
 	// entered-in-error (the value should not have been sent) or cancelled
 	// (the observation is unavailable).
 	Status string
+	// ID, when set, is the id the withdrawn result was written to (as kept
+	// by the caller); otherwise it is derived like a result's.
+	ID string
 }
 
 // output is one computed resource.
@@ -322,6 +325,13 @@ func resultText(r calc.Result) string {
 	return text
 }
 
+// ResultID returns the id of the eGFR Observation written for a result of
+// a group (as Response and Forward write it), so that the caller can keep
+// track of what was sent.
+func (x *Extraction) ResultID(g *Group, out *calc.Outcome, r calc.Result) string {
+	return "egfr-" + resultID(g, r.Equation, r.AssumedSex, identities(g.used(out, r), r.Uses))
+}
+
 func (x *Extraction) result(g *Group, out *calc.Outcome, r calc.Result, meta Meta, recordID int64) (output, output, error) {
 	used := g.used(out, r)
 	h := resultID(g, r.Equation, r.AssumedSex, identities(used, r.Uses))
@@ -440,7 +450,10 @@ func (x *Extraction) withdrawal(g *Group, w Withdrawal, meta Meta) (output, erro
 	if tpl.Unit == "" {
 		tpl.Unit = calc.UnitIndexed
 	}
-	id := "egfr-" + resultID(g, w.Equation, w.AssumedSex, x.withdrawnIdentities(g, w, input))
+	id := w.ID
+	if id == "" {
+		id = "egfr-" + resultID(g, w.Equation, w.AssumedSex, x.withdrawnIdentities(g, w, input))
+	}
 	o := &opb.Observation{
 		Id:       &dpb.Id{Value: id},
 		Status:   &opb.Observation_StatusCode{Value: status},

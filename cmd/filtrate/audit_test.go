@@ -110,7 +110,7 @@ func TestStoreMigrate(t *testing.T) {
 
 	out, _, err := runCLI(t, "", "store", "migrate", "--config", cfg)
 	require.NoError(t, err)
-	require.Equal(t, "store migrate: applied 1\n", out)
+	require.Equal(t, "store migrate: applied 1, 2\n", out)
 	out, _, err = runCLI(t, "", "store", "migrate", "--config", cfg)
 	require.NoError(t, err)
 	require.Equal(t, "store migrate: schema up to date\n", out)

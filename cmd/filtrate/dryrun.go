@@ -68,12 +68,12 @@ forwarded transaction.`,
 			// Show what would be forwarded even without a configured peer.
 			st.ForwardHL7, st.ForwardFHIR = true, true
 			proc := pipeline.NewProcessor(c, s, version, nil)
-			h := &ingest.HL7{Proc: proc, State: func() *ingest.State { return st }, History: s}
+			h := &ingest.HL7{Proc: proc, State: func() *ingest.State { return st }, History: s, Sent: s}
 			codec, err := fhir.NewCodec()
 			if err != nil {
 				return err
 			}
-			fh := &ingest.FHIR{Proc: proc, State: func() *ingest.State { return st }, Codec: codec, Version: version, Site: cfg.Site, History: s}
+			fh := &ingest.FHIR{Proc: proc, State: func() *ingest.State { return st }, Codec: codec, Version: version, Site: cfg.Site, History: s, Sent: s}
 			out := cmd.OutOrStdout()
 			notAA := 0
 			for _, in := range inputs {

@@ -40,6 +40,7 @@ func (a *App) setupFHIR(cfg *config.Config) error {
 		},
 		Started: time.Now(),
 		History: a.store,
+		Sent:    a.store,
 	}
 	if cfg.FHIR.PatientSource != "" {
 		h.Patients = &ingest.FHIRPatients{

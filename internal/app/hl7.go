@@ -23,6 +23,7 @@ func (a *App) setupHL7(cfg *config.Config) error {
 		Logger:  a.log.With("listener", "hl7v2"),
 		Limits:  hl7v2.Limits{MaxMessageBytes: cfg.HL7v2.MaxFrameBytes},
 		History: a.store,
+		Sent:    a.store,
 	}
 	for _, w := range a.workers {
 		if w.Destination == ingest.DestinationHL7 {

@@ -59,6 +59,9 @@ type FHIR struct {
 	// History, when set, lets a correction of one input withdraw eGFRs
 	// made earlier with another input of the same specimen.
 	History HistorySource
+	// Sent, when set, is the record of the eGFRs sent per order or
+	// specimen: later withdrawals address exactly what was sent.
+	Sent ReportedSource
 }
 
 // FHIRProcessed is what handling one FHIR request produced.
@@ -139,10 +142,22 @@ func (h *FHIR) Handle(ctx context.Context, at fhir.Endpoint, body []byte) (p FHI
 	res := make([]fhir.GroupResult, len(evals))
 	for i, e := range evals {
 		res[i].Outcome = e.Outcome
-		res[i].Withdrawals = fhirWithdrawals(ctx, h.History, st, x, x.Groups[i], e)
+		res[i].Withdrawals = fhirWithdrawals(ctx, h.History, h.Sent, st, x, x.Groups[i], e)
+		gk := FHIRGroupKey(e.Group)
 		for _, w := range res[i].Withdrawals {
 			evals[i].Withdrawals = append(evals[i].Withdrawals, pipeline.WithdrawnEGFR{
 				Equation: w.Equation, AssumedSex: w.AssumedSex, SourceID: w.SourceID, Status: w.Status, Cause: withdrawalCause(w.Status)})
+			if gk != "" && w.ID != "" {
+				evals[i].Reported = append(evals[i].Reported, store.Reported{Key: "fhir|" + w.ID, GroupKey: gk,
+					Equation: w.Equation, AssumedSex: w.AssumedSex, ExternalID: w.ID, MessageID: pm.MessageID})
+			}
+		}
+		if gk != "" {
+			for _, r := range e.Outcome.Results {
+				id := x.ResultID(x.Groups[i], &evals[i].Outcome, r)
+				evals[i].Reported = append(evals[i].Reported, store.Reported{Key: "fhir|" + id, GroupKey: gk,
+					Equation: r.Equation, AssumedSex: r.AssumedSex, ExternalID: id, Active: true, MessageID: pm.MessageID})
+			}
 		}
 	}
 	meta := fhir.Meta{Now: h.now(), SoftwareVersion: h.Version, ConfigHash: st.Snapshot.ConfigHash}

@@ -31,6 +31,9 @@ type HL7 struct {
 	// History, when set, lets a correction of one input withdraw eGFRs
 	// made earlier with another input of the same specimen.
 	History HistorySource
+	// Sent, when set, is the record of the eGFRs sent per order or
+	// specimen: later withdrawals address exactly what was sent.
+	Sent ReportedSource
 
 	seq atomic.Uint64
 }
@@ -119,11 +122,22 @@ func (h *HL7) Handle(ctx context.Context, payload []byte) (p Processed) {
 		o := e.Outcome
 		outcomes[index[i]] = &o
 	}
-	withdrawals := hl7Withdrawals(ctx, h.History, st, oru, pm, evals, index)
+	withdrawals := hl7Withdrawals(ctx, h.History, h.Sent, st, oru, pm, evals, index)
 	for i := range evals {
+		gk := HL7GroupKey(oru, index[i])
 		for _, w := range withdrawals[index[i]] {
 			evals[i].Withdrawals = append(evals[i].Withdrawals, pipeline.WithdrawnEGFR{
 				Equation: w.Equation, AssumedSex: w.AssumedSex, SourceID: w.SourceID, Status: w.Status, Cause: withdrawalCause(w.Status)})
+			if gk != "" {
+				evals[i].Reported = append(evals[i].Reported, store.Reported{Key: HL7ObservationKey(gk, w.Equation, w.AssumedSex),
+					GroupKey: gk, Equation: w.Equation, AssumedSex: w.AssumedSex, MessageID: pm.MessageID})
+			}
+		}
+		if gk != "" {
+			for _, r := range evals[i].Outcome.Results {
+				evals[i].Reported = append(evals[i].Reported, store.Reported{Key: HL7ObservationKey(gk, r.Equation, r.AssumedSex),
+					GroupKey: gk, Equation: r.Equation, AssumedSex: r.AssumedSex, Active: true, MessageID: pm.MessageID})
+			}
 		}
 	}
 	enriched, err := oru.Enrich(outcomes, hl7v2.EnrichOptions{Withdrawals: withdrawals})

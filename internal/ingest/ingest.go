@@ -172,12 +172,11 @@ func CodeMap(cfg *config.Config) (*hl7v2.CodeMap, error) {
 // unknown since. An eGFR the outcome reports again is never withdrawn: the
 // new value replaces it.
 //
-// This is decided from the message and the result history, not from a
-// record of each eGFR sent, so it may still name an eGFR that was never
-// sent (receivers must accept a withdrawal of an observation they do not
-// hold), and it does not withdraw a preliminary eGFR whose input later
-// arrives final but uncomputable, nor an eGFR of an age band a corrected
-// date of birth no longer gives. When two inputs withdraw the
+// These rules apply only when there is no record of what was sent for the
+// order or specimen (sentBefore, which is exact, applies otherwise): for a
+// first message about it, or one that was sent before the record existed.
+// They may then name an eGFR that was never sent (receivers must accept a
+// withdrawal of an observation they do not hold). When two inputs withdraw the
 // same eGFR (creatinine and cystatin C both deleted), it is withdrawn once:
 // for the input's own withdrawal or cancellation rather than for a
 // correction, and otherwise for the later input.
@@ -206,6 +205,78 @@ type groupInput struct {
 // withdrawal is one eGFR to withdraw, in neutral form.
 type withdrawal struct {
 	SourceID, Equation, EquationName, LOINC, LOINCName, Unit, AssumedSex, Status string
+	// ID is the receiver's id of the withdrawn observation when known
+	// (FHIR, from the record of what was sent).
+	ID string
+}
+
+// sentBefore plans the withdrawals of one group from the record of what was
+// sent for its specimen or order (store.Reported): every observation still
+// active that this message does not report again, and whose equation uses
+// an input this message carries in any status, is withdrawn: with the
+// input's own D, W or X (withdrawn, cancelled), else with corrective (HL7 D,
+// FHIR entered-in-error). This covers a preliminary eGFR whose input
+// arrives final but uncomputable, an age band changed by a corrected date
+// of birth, and a change of known sex, and it never names an observation
+// that was not sent.
+func sentBefore(reg *calc.Registry, pol calc.Policy, out calc.Outcome, inputs []groupInput, prev []store.Reported, corrective string) []withdrawal {
+	type key struct{ equation, sex string }
+	computed := map[key]bool{}
+	for _, r := range out.Results {
+		computed[key{r.Equation, r.AssumedSex}] = true
+	}
+	var ws []withdrawal
+	for _, p := range prev {
+		if !p.Active || computed[key{p.Equation, p.AssumedSex}] {
+			continue
+		}
+		e, ok := reg.Latest(p.Equation)
+		if !ok {
+			continue
+		}
+		var cause *groupInput
+		for i := range inputs {
+			in := &inputs[i]
+			if !slices.Contains(e.Inputs(), in.Analyte) {
+				continue
+			}
+			if cause == nil || (cause.State != inputWithdrawn && cause.State != inputCancelled &&
+				(in.State == inputWithdrawn || in.State == inputCancelled)) {
+				cause = in
+			}
+		}
+		if cause == nil {
+			continue // this message carries none of its inputs
+		}
+		status := corrective
+		if cause.State == inputWithdrawn || cause.State == inputCancelled {
+			status = cause.Status
+		}
+		code, name := loincOf(pol, e)
+		ws = append(ws, withdrawal{SourceID: cause.SourceID, Equation: e.ID, EquationName: e.Name,
+			LOINC: code, LOINCName: name, Unit: e.Unit, AssumedSex: p.AssumedSex, Status: status, ID: p.ExternalID})
+	}
+	return ws
+}
+
+// ReportedSource reads the record of what was sent (store.Store satisfies
+// it).
+type ReportedSource interface {
+	ReportedIn(ctx context.Context, groupKey string) ([]store.Reported, error)
+}
+
+// previouslySent reads the record for a group; ok is false when there is
+// none (no record, or the record cannot be read), and the rules apply
+// instead.
+func previouslySent(ctx context.Context, src ReportedSource, groupKey string) ([]store.Reported, bool) {
+	if src == nil || groupKey == "" {
+		return nil, false
+	}
+	prev, err := src.ReportedIn(ctx, groupKey)
+	if err != nil || len(prev) == 0 {
+		return nil, false
+	}
+	return prev, true
 }
 
 // inputAnalyte reports the analytes an eGFR may be calculated from,
@@ -344,7 +415,7 @@ func presence(ctx context.Context, hist HistorySource, patientID string, at time
 // hl7Withdrawals returns, per order of the message, the eGFR observations
 // to withdraw (hl7v2.EnrichOptions.Withdrawals). index maps each
 // evaluated group to its order, as neutral returns it.
-func hl7Withdrawals(ctx context.Context, hist HistorySource, st *State, oru *hl7v2.ORU, pm pipeline.Message, evals []pipeline.Evaluated, index []int) [][]hl7v2.Withdrawal {
+func hl7Withdrawals(ctx context.Context, hist HistorySource, sent ReportedSource, st *State, oru *hl7v2.ORU, pm pipeline.Message, evals []pipeline.Evaluated, index []int) [][]hl7v2.Withdrawal {
 	reg := st.registry()
 	out := make([][]hl7v2.Withdrawal, len(oru.Orders))
 	for i, e := range evals {
@@ -370,9 +441,17 @@ func hl7Withdrawals(ctx context.Context, hist HistorySource, st *State, oru *hl7
 		if pid == "" {
 			pid = pm.PatientID
 		}
-		present := presence(ctx, hist, pid, e.Request.CollectedAt, inputs)
-		for _, w := range planWithdrawals(reg, e.Request, e.Outcome, inputs, present) {
-			out[index[i]] = append(out[index[i]], hl7v2.Withdrawal(w))
+		var ws []withdrawal
+		if prev, ok := previouslySent(ctx, sent, HL7GroupKey(oru, index[i])); ok {
+			ws = sentBefore(reg, e.Request.Policy, e.Outcome, inputs, prev, "D")
+		} else {
+			present := presence(ctx, hist, pid, e.Request.CollectedAt, inputs)
+			ws = planWithdrawals(reg, e.Request, e.Outcome, inputs, present)
+		}
+		for _, w := range ws {
+			out[index[i]] = append(out[index[i]], hl7v2.Withdrawal{SourceID: w.SourceID, Equation: w.Equation,
+				EquationName: w.EquationName, LOINC: w.LOINC, LOINCName: w.LOINCName, Unit: w.Unit,
+				AssumedSex: w.AssumedSex, Status: w.Status})
 		}
 	}
 	return out
@@ -380,7 +459,7 @@ func hl7Withdrawals(ctx context.Context, hist HistorySource, st *State, oru *hl7
 
 // fhirWithdrawals returns the eGFR Observations to withdraw for one group
 // (fhir.GroupResult.Withdrawals).
-func fhirWithdrawals(ctx context.Context, hist HistorySource, st *State, x *fhir.Extraction, g *fhir.Group, e pipeline.Evaluated) []fhir.Withdrawal {
+func fhirWithdrawals(ctx context.Context, hist HistorySource, sent ReportedSource, st *State, x *fhir.Extraction, g *fhir.Group, e pipeline.Evaluated) []fhir.Withdrawal {
 	mine := map[*fhir.Observation]bool{}
 	for _, o := range append(append([]*fhir.Observation(nil), g.Inputs...), g.Withdrawn...) {
 		mine[o] = true
@@ -402,9 +481,17 @@ func fhirWithdrawals(ctx context.Context, hist HistorySource, st *State, x *fhir
 		inputs = append(inputs, in)
 	}
 	var out []fhir.Withdrawal
-	present := presence(ctx, hist, e.Group.PatientID, e.Request.CollectedAt, inputs)
-	for _, w := range planWithdrawals(st.registry(), e.Request, e.Outcome, inputs, present) {
-		out = append(out, fhir.Withdrawal(w))
+	var ws []withdrawal
+	if prev, ok := previouslySent(ctx, sent, FHIRGroupKey(e.Group)); ok {
+		ws = sentBefore(st.registry(), e.Request.Policy, e.Outcome, inputs, prev, "entered-in-error")
+	} else {
+		present := presence(ctx, hist, e.Group.PatientID, e.Request.CollectedAt, inputs)
+		ws = planWithdrawals(st.registry(), e.Request, e.Outcome, inputs, present)
+	}
+	for _, w := range ws {
+		out = append(out, fhir.Withdrawal{SourceID: w.SourceID, Equation: w.Equation,
+			EquationName: w.EquationName, LOINC: w.LOINC, LOINCName: w.LOINCName, Unit: w.Unit,
+			AssumedSex: w.AssumedSex, Status: w.Status, ID: w.ID})
 	}
 	return out
 }
@@ -423,4 +510,42 @@ func withdrawalCause(status string) string {
 	default:
 		return "the result it was calculated from was withdrawn"
 	}
+}
+
+// HL7GroupKey names an order for the record of what was sent: the sender
+// (MSH-3, MSH-4) and the filler order number (OBR-3), else the placer order
+// number (OBR-2), else the patient and the collection time as sent.
+func HL7GroupKey(oru *hl7v2.ORU, order int) string {
+	msh := oru.Message().MSH()
+	ord := oru.Orders[order]
+	id := ord.FillerOrder
+	if id == "" {
+		id = ord.PlacerOrder
+	}
+	if id == "" {
+		pid := ""
+		if ord.Patient != nil {
+			pid = ord.Patient.ID + "^^^" + ord.Patient.AssigningAuthority
+		}
+		if pid == "" || ord.CollectedText == "" {
+			return ""
+		}
+		id = "patient:" + pid + "@" + ord.CollectedText
+	}
+	return "hl7v2|" + msh.Field(3).String() + "|" + msh.Field(4).String() + "|" + id
+}
+
+// HL7ObservationKey names one eGFR observation of an order: the receiver
+// keys it on the order, OBX-3 and OBX-4 (the equation and assumed sex).
+func HL7ObservationKey(groupKey, equation, assumedSex string) string {
+	return groupKey + "|" + equation + "|" + assumedSex
+}
+
+// FHIRGroupKey names a FHIR specimen group for the record of what was
+// sent: the patient and the collection time.
+func FHIRGroupKey(g pipeline.Group) string {
+	if g.PatientID == "" || g.Request.CollectedAt.IsZero() {
+		return ""
+	}
+	return "fhir|" + g.PatientID + "|" + g.Request.CollectedAt.UTC().Format(time.RFC3339Nano)
 }

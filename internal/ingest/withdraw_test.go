@@ -3,9 +3,12 @@ package ingest_test
 import (
 	"context"
 	"fmt"
+	"strings"
 	"testing"
 
 	"github.com/stretchr/testify/require"
+
+	"filtrate/fhir"
 )
 
 // withHistory lets withdrawals consult the result history, as the daemon
@@ -108,4 +111,112 @@ func TestWithdrawalsAreAudited(t *testing.T) {
 		}
 	}
 	require.True(t, found, "an egfr-withdrawn record for the withdrawn eGFR")
+}
+
+// withRecord gives the handlers the record of what was sent, as the daemon
+// does.
+func withRecord(e *env) {
+	withHistory(e)
+	e.hl7.Sent = e.st
+	e.h.Sent = e.st
+}
+
+// With the record of what was sent, withdrawals address exactly what is
+// on the receiver's side (sequences from a review of real correction
+// flows).
+func TestWithdrawalsFromTheRecordOfWhatWasSent(t *testing.T) {
+	ctx := context.Background()
+	f := func(format, status string) string { return fmt.Sprintf(format, status) }
+
+	t.Run("a preliminary eGFR whose input arrives final but uncomputable is withdrawn", func(t *testing.T) {
+		e := newEnv(t, withRecord)
+		p := e.hl7.Handle(ctx, oruWith("R1", "F", f(obxCreatinine, "P")))
+		require.Equal(t, "AA", p.Code, p.Err)
+		require.Equal(t, "P", egfrRows(t, p.Enriched)[0].Status)
+		p = e.hl7.Handle(ctx, oruWith("R2", "F", `OBX|1|NM|2160-0^Creatinine^LN||haemolysed|mg/dL|||||F|||20240603080000`))
+		require.Equal(t, "AA", p.Code, p.Err)
+		require.Equal(t, []egfrRow{{Code: loincCr2021, SubID: "ckd-epi-2021-cr", Status: "D", Equation: "ckd-epi-2021-cr"}},
+			withdrawn(egfrRows(t, p.Enriched)))
+	})
+
+	t.Run("only what was sent is withdrawn", func(t *testing.T) {
+		e := newEnv(t, withRecord)
+		p := e.hl7.Handle(ctx, oruWith("N1", "F", f(obxCreatinine, "F")))
+		require.Equal(t, "AA", p.Code, p.Err)
+		p = e.hl7.Handle(ctx, oruWith("N2", "F", f(obxCreatinine, "W")))
+		require.Equal(t, "AA", p.Code, p.Err)
+		require.Equal(t, []egfrRow{{Code: loincCr2021, SubID: "ckd-epi-2021-cr", Status: "W", Equation: "ckd-epi-2021-cr"}},
+			withdrawn(egfrRows(t, p.Enriched)), "no combined eGFR, never sent, is named")
+		// Withdrawn once: a repeat of the deletion names nothing more.
+		p = e.hl7.Handle(ctx, oruWith("N3", "F", f(obxCreatinine, "D")))
+		require.Equal(t, "AA", p.Code, p.Err)
+		require.Empty(t, withdrawn(egfrRows(t, p.Enriched)))
+	})
+
+	t.Run("a corrected birth date that changes the age band withdraws the old band's eGFR", func(t *testing.T) {
+		e := newEnv(t, withRecord)
+		child := func(control, dob string, obx ...string) []byte {
+			return []byte(fmt.Sprintf("MSH|^~\\&|NVLAB|NVL|EHR|NVH|20240603093000||ORU^R01^ORU_R01|%s|P|2.5.1\r"+
+				"PID|1||NVL-900003^^^NVL^MR||Whitlock^Rue||%s|M\r"+
+				"OBR|1|ORD9003|NVL9003|RENAL^Renal^L|||20240603080000\r", control, dob) + joinCR(obx))
+		}
+		height := `OBX|1|NM|8302-2^Body height^LN||170|cm|||||F|||20240603080000`
+		cr := `OBX|2|NM|2160-0^Creatinine^LN||0.8|mg/dL|||||C|||20240603080000`
+		p := e.hl7.Handle(ctx, child("B1", "20100310", height, strings.Replace(cr, "|C|", "|F|", 1)))
+		require.Equal(t, "AA", p.Code, p.Err)
+		require.Equal(t, "ckid-u25-cr", egfrRows(t, p.Enriched)[0].SubID)
+		p = e.hl7.Handle(ctx, child("B2", "19800310", height, cr)) // the birth date was wrong: an adult
+		require.Equal(t, "AA", p.Code, p.Err)
+		rows := egfrRows(t, p.Enriched)
+		require.Equal(t, []egfrRow{{Code: loincGeneric, SubID: "ckid-u25-cr", Status: "D", Equation: "ckid-u25-cr"}}, withdrawn(rows))
+		require.Contains(t, []string{rows[0].SubID, rows[1].SubID}, "ckd-epi-2021-cr")
+	})
+
+	t.Run("sex now known: the values as if female and as if male are withdrawn", func(t *testing.T) {
+		e := newEnv(t, withRecord, withPolicy("nkf-asn-2021", "both"))
+		p := e.hl7.Handle(ctx, oruWith("X1", "U", f(obxCreatinine, "F")))
+		require.Equal(t, "AA", p.Code, p.Err)
+		require.Len(t, egfrRows(t, p.Enriched), 2)
+		p = e.hl7.Handle(ctx, oruWith("X2", "F", f(obxCreatinine, "C")))
+		require.Equal(t, "AA", p.Code, p.Err)
+		rows := egfrRows(t, p.Enriched)
+		require.Equal(t, []egfrRow{
+			{Code: loincCr2021, SubID: "ckd-epi-2021-cr.F", Status: "D", Equation: "ckd-epi-2021-cr"},
+			{Code: loincCr2021, SubID: "ckd-epi-2021-cr.M", Status: "D", Equation: "ckd-epi-2021-cr"},
+		}, withdrawn(rows))
+		require.Equal(t, "ckd-epi-2021-cr", rows[0].SubID, "the corrected value, as female")
+		require.Equal(t, "C", rows[0].Status)
+	})
+}
+
+// FHIR: a cystatin C corrected alone withdraws the combined eGFR at the
+// exact id it was written to (from the record of what was sent).
+func TestFHIRPartialCorrectionFromTheRecord(t *testing.T) {
+	ctx := context.Background()
+	e := newEnv(t, withRecord)
+	at := "2024-06-03T08:00:00Z"
+	crObs := fhirObs{id: "o-cr", code: "2160-0", status: "final", value: "1.0", unit: "mg/dL"}
+	cysObs := fhirObs{id: "o-cys", code: "33863-2", status: "final", value: "1.0", unit: "mg/L"}
+	p := e.h.Handle(ctx, fhir.EndpointBundle, fhirBundle("F1", "female", "1970-03-10", at, crObs, cysObs))
+	require.Equal(t, 200, p.Status, string(p.Body))
+	first := byEquation(egfrObservations(t, p.Body))
+	combined := ""
+	for k, o := range first {
+		if strings.HasPrefix(k, "ckd-epi-2021-crcys|") {
+			combined = o.ID
+		}
+	}
+	require.NotEmpty(t, combined)
+
+	cysObs.status, cysObs.value = "corrected", "2.0"
+	p = e.h.Handle(ctx, fhir.EndpointBundle, fhirBundle("F2", "female", "1970-03-10", at, cysObs))
+	require.Equal(t, 200, p.Status, string(p.Body))
+	var withdrawnIDs []string
+	for _, o := range egfrObservations(t, p.Body) {
+		if !o.HasValue {
+			withdrawnIDs = append(withdrawnIDs, o.ID)
+			require.Equal(t, "entered-in-error", o.Status)
+		}
+	}
+	require.Equal(t, []string{combined}, withdrawnIDs)
 }

@@ -93,6 +93,9 @@ type Evaluated struct {
 	// Withdrawals are the eGFRs sent earlier that this message withdraws
 	// (filled by the transport after Evaluate); each gets an audit record.
 	Withdrawals []WithdrawnEGFR
+	// Reported is what this message sends (active) or withdraws, for the
+	// record of what was sent (filled by the transport).
+	Reported []store.Reported
 }
 
 // WithdrawnEGFR is one eGFR observation a message withdraws.
@@ -154,6 +157,12 @@ func (p *Processor) Commit(ctx context.Context, msg Message, evals []Evaluated, 
 		return store.Receipt{}, err
 	}
 	sub := store.Submission{DedupKey: key(msg.DedupKey), Records: recs, History: History(msg, evals)}
+	for _, e := range evals {
+		for _, r := range e.Reported {
+			r.Key, r.GroupKey, r.MessageID = key(r.Key), key(r.GroupKey), clean(r.MessageID)
+			sub.Reported = append(sub.Reported, r)
+		}
+	}
 	for _, o := range outs {
 		sub.Outbox = append(sub.Outbox, store.OutboxMessage{
 			Destination: o.Destination, PartitionKey: key(o.PartitionKey), MessageID: clean(o.MessageID),
