@@ -325,6 +325,16 @@ func resultText(r calc.Result) string {
 	return text
 }
 
+// ResultInputs returns the identities of the input Observations a result
+// was computed from (those that key its id).
+func (x *Extraction) ResultInputs(g *Group, out *calc.Outcome, r calc.Result) []string {
+	return identities(g.used(out, r), r.Uses)
+}
+
+// Identity is the Observation's stable identity (identifier, else id, else
+// fullUrl), as used in result ids.
+func (o *Observation) Identity() string { return o.identity }
+
 // ResultID returns the id of the eGFR Observation written for a result of
 // a group (as Response and Forward write it), so that the caller can keep
 // track of what was sent.

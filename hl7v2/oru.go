@@ -223,7 +223,8 @@ type Order struct {
 	// Observations holds the OBX segments of the order in message order.
 	Observations []*Observation
 
-	seg int // index of the OBR segment
+	seg int  // index of the OBR segment
+	oru *ORU // the message it belongs to
 }
 
 // Observation is one OBX segment.
@@ -249,6 +250,14 @@ type Observation struct {
 
 	seg     int
 	patient *Patient
+}
+
+// Segment returns the order's OBR segment.
+func (ord *Order) Segment() *Segment {
+	if ord.oru == nil {
+		return nil
+	}
+	return ord.oru.msg.Segment(ord.seg)
 }
 
 // Message returns the message the ORU was extracted from.
@@ -289,6 +298,7 @@ func ExtractORU(m *Message, opts ExtractOptions) (*ORU, error) {
 				PlacerOrder: s.Field(2).String(),
 				FillerOrder: s.Field(3).String(),
 				seg:         i,
+				oru:         o,
 			}
 			o.Orders = append(o.Orders, order)
 			if t := s.Field(7).Component(1).String(); t != "" {

@@ -429,7 +429,7 @@ func normalize(sub Submission, softwareVersion string) (*Submission, error) {
 		}
 		for _, f := range []struct{ name, value string }{
 			{"Key", r.Key}, {"GroupKey", r.GroupKey}, {"Equation", r.Equation}, {"AssumedSex", r.AssumedSex},
-			{"ExternalID", r.ExternalID}, {"MessageID", r.MessageID},
+			{"ExternalID", r.ExternalID}, {"Inputs", r.Inputs}, {"MessageID", r.MessageID},
 		} {
 			if err := checkText(f.name, f.value); err != nil {
 				return nil, fmt.Errorf("%w: reported observation %d: %s", ErrInvalid, i, err)
@@ -526,12 +526,12 @@ func (s *sqlStore) upsertReported(ctx context.Context, tx *sql.Tx, rs []Reported
 			active = 1
 		}
 		if _, err := tx.ExecContext(ctx, s.d.q(`INSERT INTO reported_observations
-(obs_key, group_key, equation, assumed_sex, external_id, active, message_id, updated_at)
-VALUES (?, ?, ?, ?, ?, ?, ?, ?)
+(obs_key, group_key, equation, assumed_sex, external_id, inputs, active, message_id, updated_at)
+VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)
 ON CONFLICT (obs_key) DO UPDATE SET group_key = excluded.group_key, equation = excluded.equation,
-assumed_sex = excluded.assumed_sex, external_id = excluded.external_id, active = excluded.active,
+assumed_sex = excluded.assumed_sex, external_id = excluded.external_id, inputs = excluded.inputs, active = excluded.active,
 message_id = excluded.message_id, updated_at = excluded.updated_at`),
-			r.Key, r.GroupKey, r.Equation, r.AssumedSex, r.ExternalID, active, r.MessageID, s.d.t(now)); err != nil {
+			r.Key, r.GroupKey, r.Equation, r.AssumedSex, r.ExternalID, r.Inputs, active, r.MessageID, s.d.t(now)); err != nil {
 			return dbErr(fmt.Sprintf("accept: reported observation %d", i), err)
 		}
 	}

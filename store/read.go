@@ -233,7 +233,7 @@ func (s *sqlStore) ReportedIn(ctx context.Context, groupKey string) ([]Reported,
 	if s.closed.Load() {
 		return nil, ErrClosed
 	}
-	rows, err := s.r.QueryContext(ctx, s.d.q(`SELECT obs_key, group_key, equation, assumed_sex, external_id, active, message_id, updated_at
+	rows, err := s.r.QueryContext(ctx, s.d.q(`SELECT obs_key, group_key, equation, assumed_sex, external_id, inputs, active, message_id, updated_at
 FROM reported_observations WHERE group_key = ? ORDER BY obs_key`), groupKey)
 	if err != nil {
 		return nil, dbErr("read reported observations", err)
@@ -243,7 +243,7 @@ FROM reported_observations WHERE group_key = ? ORDER BY obs_key`), groupKey)
 	for rows.Next() {
 		var r Reported
 		var active int
-		if err := rows.Scan(&r.Key, &r.GroupKey, &r.Equation, &r.AssumedSex, &r.ExternalID, &active, &r.MessageID, dbTime{&r.UpdatedAt}); err != nil {
+		if err := rows.Scan(&r.Key, &r.GroupKey, &r.Equation, &r.AssumedSex, &r.ExternalID, &r.Inputs, &active, &r.MessageID, dbTime{&r.UpdatedAt}); err != nil {
 			return nil, dbErr("read reported observations", err)
 		}
 		r.Active = active == 1

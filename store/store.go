@@ -175,6 +175,10 @@ type Reported struct {
 	AssumedSex string
 	// ExternalID is the receiver's id (FHIR resource id); "" for HL7 v2.
 	ExternalID string
+	// Inputs names the input observations the value was computed from
+	// (FHIR identities, sorted and comma-separated); "" when the group key
+	// alone ties it to its inputs (HL7 v2 order).
+	Inputs string
 	// Active is false once the observation was withdrawn.
 	Active bool
 	// MessageID is the message that last sent or withdrew it.

@@ -11,6 +11,7 @@ import (
 	"net/http"
 	"net/url"
 	"regexp"
+	"slices"
 	"strings"
 	"sync"
 	"time"
@@ -142,7 +143,12 @@ func (h *FHIR) Handle(ctx context.Context, at fhir.Endpoint, body []byte) (p FHI
 	res := make([]fhir.GroupResult, len(evals))
 	for i, e := range evals {
 		res[i].Outcome = e.Outcome
-		res[i].Withdrawals = fhirWithdrawals(ctx, h.History, h.Sent, st, x, x.Groups[i], e)
+		ws, err := fhirWithdrawals(ctx, h.History, h.Sent, st, x, x.Groups[i], e)
+		if err != nil {
+			h.logger().Error("fhir request not processed: record of sent eGFRs unavailable; answered 503", "err", err)
+			return h.fail(http.StatusServiceUnavailable, "transient", "the request could not be processed; retry later", err)
+		}
+		res[i].Withdrawals = ws
 		gk := FHIRGroupKey(e.Group)
 		for _, w := range res[i].Withdrawals {
 			evals[i].Withdrawals = append(evals[i].Withdrawals, pipeline.WithdrawnEGFR{
@@ -155,8 +161,11 @@ func (h *FHIR) Handle(ctx context.Context, at fhir.Endpoint, body []byte) (p FHI
 		if gk != "" {
 			for _, r := range e.Outcome.Results {
 				id := x.ResultID(x.Groups[i], &evals[i].Outcome, r)
+				ins := x.ResultInputs(x.Groups[i], &evals[i].Outcome, r)
+				slices.Sort(ins)
 				evals[i].Reported = append(evals[i].Reported, store.Reported{Key: "fhir|" + id, GroupKey: gk,
-					Equation: r.Equation, AssumedSex: r.AssumedSex, ExternalID: id, Active: true, MessageID: pm.MessageID})
+					Equation: r.Equation, AssumedSex: r.AssumedSex, ExternalID: id, Inputs: strings.Join(ins, ","),
+					Active: true, MessageID: pm.MessageID})
 			}
 		}
 	}

@@ -122,9 +122,14 @@ func (h *HL7) Handle(ctx context.Context, payload []byte) (p Processed) {
 		o := e.Outcome
 		outcomes[index[i]] = &o
 	}
-	withdrawals := hl7Withdrawals(ctx, h.History, h.Sent, st, oru, pm, evals, index)
+	withdrawals, err := hl7Withdrawals(ctx, h.History, h.Sent, st, oru, pm, evals, index)
+	if err != nil {
+		h.logger().Error("hl7v2 message not processed: record of sent eGFRs unavailable; answered AE", "err", err)
+		return h.refuse(msg, hl7v2.AckError, hl7v2.ErrorDetail{Code: hl7v2.ErrCodeApplication, Text: "message could not be processed; resend later"}, err)
+	}
+	keys := HL7GroupKeys(oru)
 	for i := range evals {
-		gk := HL7GroupKey(oru, index[i])
+		gk := keys[index[i]]
 		for _, w := range withdrawals[index[i]] {
 			evals[i].Withdrawals = append(evals[i].Withdrawals, pipeline.WithdrawnEGFR{
 				Equation: w.Equation, AssumedSex: w.AssumedSex, SourceID: w.SourceID, Status: w.Status, Cause: withdrawalCause(w.Status)})

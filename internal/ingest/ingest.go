@@ -10,6 +10,7 @@ import (
 	"filtrate/store"
 	"fmt"
 	"slices"
+	"strings"
 	"time"
 
 	"filtrate/calc"
@@ -196,6 +197,9 @@ const (
 type groupInput struct {
 	SourceID string
 	Analyte  calc.Analyte
+	// Identity is the input's stable identity across messages (FHIR
+	// Observation identity); "" for HL7 v2.
+	Identity string
 	State    inputState
 	// Status is the transport's status code for the withdrawals this
 	// input causes (unused for inputOther).
@@ -211,23 +215,34 @@ type withdrawal struct {
 }
 
 // sentBefore plans the withdrawals of one group from the record of what was
-// sent for its specimen or order (store.Reported): every observation still
-// active that this message does not report again, and whose equation uses
-// an input this message carries in any status, is withdrawn: with the
-// input's own D, W or X (withdrawn, cancelled), else with corrective (HL7 D,
-// FHIR entered-in-error). This covers a preliminary eGFR whose input
-// arrives final but uncomputable, an age band changed by a corrected date
-// of birth, and a change of known sex, and it never names an observation
-// that was not sent.
+// sent for its order or specimen (store.Reported): every observation still
+// active that this message does not report again, that was computed from
+// this same specimen (FHIR: one of its input Observations is in the
+// message), and whose equation uses an input this message carries, is
+// withdrawn, with the input's own D, W or X (withdrawn, cancelled), else
+// with corrective (HL7 D, FHIR entered-in-error). A final or preliminary
+// input that is not a correction withdraws only when it now gives a value
+// that cannot be used, or when the equation no longer applies (a corrected
+// birth date changed the age band, the sex became known): not when the
+// message merely lacks something (height, birth date, sex), which would
+// withdraw a valid eGFR. This covers a preliminary eGFR whose input
+// arrives final but uncomputable, and never names an observation that was
+// not sent.
 func sentBefore(reg *calc.Registry, pol calc.Policy, out calc.Outcome, inputs []groupInput, prev []store.Reported, corrective string) []withdrawal {
 	type key struct{ equation, sex string }
 	computed := map[key]bool{}
 	for _, r := range out.Results {
 		computed[key{r.Equation, r.AssumedSex}] = true
 	}
+	idents := map[string]bool{}
+	for _, in := range inputs {
+		if in.Identity != "" {
+			idents[in.Identity] = true
+		}
+	}
 	var ws []withdrawal
 	for _, p := range prev {
-		if !p.Active || computed[key{p.Equation, p.AssumedSex}] {
+		if !p.Active || computed[key{p.Equation, p.AssumedSex}] || !sameSpecimen(p.Inputs, idents) {
 			continue
 		}
 		e, ok := reg.Latest(p.Equation)
@@ -240,13 +255,16 @@ func sentBefore(reg *calc.Registry, pol calc.Policy, out calc.Outcome, inputs []
 			if !slices.Contains(e.Inputs(), in.Analyte) {
 				continue
 			}
+			if in.State == inputOther && !unusableNow(out, e.ID, in) {
+				continue
+			}
 			if cause == nil || (cause.State != inputWithdrawn && cause.State != inputCancelled &&
 				(in.State == inputWithdrawn || in.State == inputCancelled)) {
 				cause = in
 			}
 		}
 		if cause == nil {
-			continue // this message carries none of its inputs
+			continue
 		}
 		status := corrective
 		if cause.State == inputWithdrawn || cause.State == inputCancelled {
@@ -259,24 +277,93 @@ func sentBefore(reg *calc.Registry, pol calc.Policy, out calc.Outcome, inputs []
 	return ws
 }
 
+// sameSpecimen reports whether a recorded observation was computed from
+// one of the message's inputs; an empty record of inputs (HL7 v2, where
+// the order key ties them) always matches.
+func sameSpecimen(recorded string, idents map[string]bool) bool {
+	if recorded == "" {
+		return true
+	}
+	for _, id := range strings.Split(recorded, ",") {
+		if idents[id] {
+			return true
+		}
+	}
+	return false
+}
+
+// missingData are the refusals that say a message lacks something rather
+// than that a value is wrong.
+var missingData = map[calc.Reason]bool{
+	calc.ReasonHeightMissing: true, calc.ReasonAgeMissing: true, calc.ReasonSexUnknown: true, calc.ReasonInputMissing: true,
+}
+
+// unusableNow reports whether a final or preliminary input now withdraws
+// an equation's earlier value: its own value is refused, or the equation
+// was refused (or not attempted) for a reason other than missing data.
+func unusableNow(out calc.Outcome, equation string, in *groupInput) bool {
+	for _, rf := range out.Refusals {
+		if rf.SourceID == in.SourceID && rf.Equation == "" && !missingData[rf.Code] {
+			return true // the input's value itself is unusable
+		}
+	}
+	for _, rf := range out.Refusals {
+		if (rf.Equation == equation || rf.Equation == "") && missingData[rf.Code] {
+			return false // only something is missing: the earlier value stands
+		}
+	}
+	return true // refused for another reason, or no longer applicable
+}
+
 // ReportedSource reads the record of what was sent (store.Store satisfies
 // it).
 type ReportedSource interface {
 	ReportedIn(ctx context.Context, groupKey string) ([]store.Reported, error)
 }
 
-// previouslySent reads the record for a group; ok is false when there is
-// none (no record, or the record cannot be read), and the rules apply
-// instead.
-func previouslySent(ctx context.Context, src ReportedSource, groupKey string) ([]store.Reported, bool) {
+// previouslySent reads the record for a group. An error means the record
+// could not be read: the message must be answered AE (or 503) so that it
+// is resent, rather than processed without it.
+func previouslySent(ctx context.Context, src ReportedSource, groupKey string) ([]store.Reported, error) {
 	if src == nil || groupKey == "" {
-		return nil, false
+		return nil, nil
 	}
-	prev, err := src.ReportedIn(ctx, groupKey)
-	if err != nil || len(prev) == 0 {
-		return nil, false
+	prev, err := src.ReportedIn(ctx, pipeline.StorageKey(groupKey))
+	if err != nil {
+		return nil, fmt.Errorf("ingest: read the record of what was sent: %w", err)
 	}
-	return prev, true
+	return prev, nil
+}
+
+// mergeWithdrawals keeps the withdrawals from the record and adds those
+// of the rules for observations the record does not know at all (an eGFR
+// sent before the record existed, or under another key), for inputs that
+// are withdrawn, cancelled or corrected: a withdrawal too many is safer
+// than a wrong eGFR left standing. What the record knows, it decides.
+func mergeWithdrawals(fromRecord, fromRules []withdrawal, prev []store.Reported, inputs []groupInput) []withdrawal {
+	type key struct{ equation, sex string }
+	idents := map[string]bool{}
+	for _, in := range inputs {
+		if in.Identity != "" {
+			idents[in.Identity] = true
+		}
+	}
+	seen := map[key]bool{}
+	for _, p := range prev {
+		if sameSpecimen(p.Inputs, idents) {
+			seen[key{p.Equation, p.AssumedSex}] = true
+		}
+	}
+	for _, w := range fromRecord {
+		seen[key{w.Equation, w.AssumedSex}] = true
+	}
+	out := fromRecord
+	for _, w := range fromRules {
+		if !seen[key{w.Equation, w.AssumedSex}] {
+			out = append(out, w)
+		}
+	}
+	return out
 }
 
 // inputAnalyte reports the analytes an eGFR may be calculated from,
@@ -415,8 +502,9 @@ func presence(ctx context.Context, hist HistorySource, patientID string, at time
 // hl7Withdrawals returns, per order of the message, the eGFR observations
 // to withdraw (hl7v2.EnrichOptions.Withdrawals). index maps each
 // evaluated group to its order, as neutral returns it.
-func hl7Withdrawals(ctx context.Context, hist HistorySource, sent ReportedSource, st *State, oru *hl7v2.ORU, pm pipeline.Message, evals []pipeline.Evaluated, index []int) [][]hl7v2.Withdrawal {
+func hl7Withdrawals(ctx context.Context, hist HistorySource, sent ReportedSource, st *State, oru *hl7v2.ORU, pm pipeline.Message, evals []pipeline.Evaluated, index []int) ([][]hl7v2.Withdrawal, error) {
 	reg := st.registry()
+	keys := HL7GroupKeys(oru)
 	out := make([][]hl7v2.Withdrawal, len(oru.Orders))
 	for i, e := range evals {
 		var inputs []groupInput
@@ -441,25 +529,25 @@ func hl7Withdrawals(ctx context.Context, hist HistorySource, sent ReportedSource
 		if pid == "" {
 			pid = pm.PatientID
 		}
-		var ws []withdrawal
-		if prev, ok := previouslySent(ctx, sent, HL7GroupKey(oru, index[i])); ok {
-			ws = sentBefore(reg, e.Request.Policy, e.Outcome, inputs, prev, "D")
-		} else {
-			present := presence(ctx, hist, pid, e.Request.CollectedAt, inputs)
-			ws = planWithdrawals(reg, e.Request, e.Outcome, inputs, present)
+		prev, err := previouslySent(ctx, sent, keys[index[i]])
+		if err != nil {
+			return nil, err
 		}
+		present := presence(ctx, hist, pid, e.Request.CollectedAt, inputs)
+		ws := mergeWithdrawals(sentBefore(reg, e.Request.Policy, e.Outcome, inputs, prev, "D"),
+			planWithdrawals(reg, e.Request, e.Outcome, inputs, present), prev, inputs)
 		for _, w := range ws {
 			out[index[i]] = append(out[index[i]], hl7v2.Withdrawal{SourceID: w.SourceID, Equation: w.Equation,
 				EquationName: w.EquationName, LOINC: w.LOINC, LOINCName: w.LOINCName, Unit: w.Unit,
 				AssumedSex: w.AssumedSex, Status: w.Status})
 		}
 	}
-	return out
+	return out, nil
 }
 
 // fhirWithdrawals returns the eGFR Observations to withdraw for one group
 // (fhir.GroupResult.Withdrawals).
-func fhirWithdrawals(ctx context.Context, hist HistorySource, sent ReportedSource, st *State, x *fhir.Extraction, g *fhir.Group, e pipeline.Evaluated) []fhir.Withdrawal {
+func fhirWithdrawals(ctx context.Context, hist HistorySource, sent ReportedSource, st *State, x *fhir.Extraction, g *fhir.Group, e pipeline.Evaluated) ([]fhir.Withdrawal, error) {
 	mine := map[*fhir.Observation]bool{}
 	for _, o := range append(append([]*fhir.Observation(nil), g.Inputs...), g.Withdrawn...) {
 		mine[o] = true
@@ -469,7 +557,7 @@ func fhirWithdrawals(ctx context.Context, hist HistorySource, sent ReportedSourc
 		if !mine[o] || !inputAnalyte(o.Analyte) {
 			continue
 		}
-		in := groupInput{SourceID: o.SourceID, Analyte: o.Analyte}
+		in := groupInput{SourceID: o.SourceID, Analyte: o.Analyte, Identity: o.Identity()}
 		switch o.Status {
 		case "entered-in-error":
 			in.State, in.Status = inputWithdrawn, "entered-in-error"
@@ -481,19 +569,19 @@ func fhirWithdrawals(ctx context.Context, hist HistorySource, sent ReportedSourc
 		inputs = append(inputs, in)
 	}
 	var out []fhir.Withdrawal
-	var ws []withdrawal
-	if prev, ok := previouslySent(ctx, sent, FHIRGroupKey(e.Group)); ok {
-		ws = sentBefore(st.registry(), e.Request.Policy, e.Outcome, inputs, prev, "entered-in-error")
-	} else {
-		present := presence(ctx, hist, e.Group.PatientID, e.Request.CollectedAt, inputs)
-		ws = planWithdrawals(st.registry(), e.Request, e.Outcome, inputs, present)
+	prev, err := previouslySent(ctx, sent, FHIRGroupKey(e.Group))
+	if err != nil {
+		return nil, err
 	}
+	present := presence(ctx, hist, e.Group.PatientID, e.Request.CollectedAt, inputs)
+	ws := mergeWithdrawals(sentBefore(st.registry(), e.Request.Policy, e.Outcome, inputs, prev, "entered-in-error"),
+		planWithdrawals(st.registry(), e.Request, e.Outcome, inputs, present), prev, inputs)
 	for _, w := range ws {
 		out = append(out, fhir.Withdrawal{SourceID: w.SourceID, Equation: w.Equation,
 			EquationName: w.EquationName, LOINC: w.LOINC, LOINCName: w.LOINCName, Unit: w.Unit,
 			AssumedSex: w.AssumedSex, Status: w.Status, ID: w.ID})
 	}
-	return out
+	return out, nil
 }
 
 // withdrawalCause explains a withdrawal status for the audit trail.
@@ -512,27 +600,56 @@ func withdrawalCause(status string) string {
 	}
 }
 
-// HL7GroupKey names an order for the record of what was sent: the sender
-// (MSH-3, MSH-4) and the filler order number (OBR-3), else the placer order
-// number (OBR-2), else the patient and the collection time as sent.
+// HL7GroupKey names an order for the record of what was sent: the sending
+// facility (MSH-4), the patient (PID-3), the filler order number (OBR-3,
+// all components, so that its namespace counts), else the placer order
+// number (OBR-2), else the collection time as sent, and the universal
+// service identifier (OBR-4.1), so that two OBR segments sharing a filler
+// number keep apart.
 func HL7GroupKey(oru *hl7v2.ORU, order int) string {
 	msh := oru.Message().MSH()
 	ord := oru.Orders[order]
-	id := ord.FillerOrder
-	if id == "" {
-		id = ord.PlacerOrder
+	pid := ""
+	if ord.Patient != nil {
+		pid = ord.Patient.ID + "^^^" + ord.Patient.AssigningAuthority
 	}
-	if id == "" {
-		pid := ""
-		if ord.Patient != nil {
-			pid = ord.Patient.ID + "^^^" + ord.Patient.AssigningAuthority
-		}
-		if pid == "" || ord.CollectedText == "" {
-			return ""
-		}
-		id = "patient:" + pid + "@" + ord.CollectedText
+	obr := ord.Segment()
+	var id string
+	switch {
+	case obr != nil && obr.Field(3).Raw() != "":
+		id = "filler:" + obr.Field(3).Raw()
+	case obr != nil && obr.Field(2).Raw() != "":
+		id = "placer:" + obr.Field(2).Raw()
+	case pid != "" && ord.CollectedText != "":
+		id = "collected:" + ord.CollectedText
+	default:
+		return ""
 	}
-	return "hl7v2|" + msh.Field(3).String() + "|" + msh.Field(4).String() + "|" + id
+	service := ""
+	if obr != nil {
+		service = obr.Field(4).Component(1).String()
+	}
+	return "hl7v2|" + msh.Field(4).String() + "|" + pid + "|" + id + "|" + service
+}
+
+// HL7GroupKeys returns HL7GroupKey for every order of a message; orders
+// of one message that would share a key (two OBR segments with the same
+// filler number and service) are told apart by their occurrence.
+func HL7GroupKeys(oru *hl7v2.ORU) []string {
+	keys := make([]string, len(oru.Orders))
+	count := map[string]int{}
+	for i := range oru.Orders {
+		k := HL7GroupKey(oru, i)
+		if k != "" {
+			if n := count[k]; n > 0 {
+				keys[i] = fmt.Sprintf("%s#%d", k, n+1)
+			} else {
+				keys[i] = k
+			}
+			count[k]++
+		}
+	}
+	return keys
 }
 
 // HL7ObservationKey names one eGFR observation of an order: the receiver

@@ -220,3 +220,87 @@ func TestFHIRPartialCorrectionFromTheRecord(t *testing.T) {
 	}
 	require.Equal(t, []string{combined}, withdrawnIDs)
 }
+
+// Findings of a third review of the record of what was sent.
+func TestRecordReviewCases(t *testing.T) {
+	ctx := context.Background()
+	f := func(format, status string) string { return fmt.Sprintf(format, status) }
+
+	t.Run("an incomplete record does not hide an eGFR the rules know", func(t *testing.T) {
+		e := newEnv(t, withRecord)
+		// Creatinine eGFR sent under one sending facility; the cystatin C
+		// of the same order then comes from another, whose record holds
+		// only what it sent.
+		p := e.hl7.Handle(ctx, oruWith("I1", "F", f(obxCreatinine, "F"), f(obxCystatinC, "F")))
+		require.Equal(t, "AA", p.Code, p.Err)
+		other := func(control string, obx ...string) []byte {
+			return []byte(strings.Replace(string(oruWith(control, "F", obx...)), "|NVLAB|NVL|", "|NVLAB|NVL-SAT|", 1))
+		}
+		p = e.hl7.Handle(ctx, other("I2", f(obxCystatinC, "F")))
+		require.Equal(t, "AA", p.Code, p.Err)
+		p = e.hl7.Handle(ctx, other("I3", f(obxCreatinine, "D")))
+		require.Equal(t, "AA", p.Code, p.Err)
+		got := map[string]string{}
+		for _, r := range withdrawn(egfrRows(t, p.Enriched)) {
+			got[r.SubID] = r.Status
+		}
+		require.Equal(t, map[string]string{"ckd-epi-2021-cr": "D", "ckd-epi-2021-crcys": "D"}, got)
+	})
+
+	t.Run("a resend lacking height or birth date withdraws no valid eGFR", func(t *testing.T) {
+		e := newEnv(t, withRecord)
+		child := func(control string, obx ...string) []byte {
+			return []byte(fmt.Sprintf("MSH|^~\\&|NVLAB|NVL|EHR|NVH|20240603093000||ORU^R01^ORU_R01|%s|P|2.5.1\r"+
+				"PID|1||NVL-900004^^^NVL^MR||Whitlock^Ash||20150310|F\r"+
+				"OBR|1|ORD9004|NVL9004|RENAL^Renal^L|||20240603080000\r", control) + joinCR(obx))
+		}
+		height := `OBX|1|NM|8302-2^Body height^LN||140|cm|||||F|||20240603080000`
+		crChild := `OBX|2|NM|2160-0^Creatinine^LN||0.6|mg/dL|||||F|||20240603080000`
+		p := e.hl7.Handle(ctx, child("V1", height, crChild))
+		require.Equal(t, "AA", p.Code, p.Err)
+		require.Len(t, egfrRows(t, p.Enriched), 1)
+		p = e.hl7.Handle(ctx, child("V2", crChild))
+		require.Equal(t, "AA", p.Code, p.Err)
+		require.Empty(t, egfrRows(t, p.Enriched), "no eGFR, and no withdrawal of the valid one")
+
+		p = e.hl7.Handle(ctx, oruWith("V3", "F", f(obxCreatinine, "F")))
+		require.Equal(t, "AA", p.Code, p.Err)
+		noDOB := strings.Replace(string(oruWith("V4", "F", f(obxCreatinine, "F"))), "|19700310|", "||", 1)
+		p = e.hl7.Handle(ctx, []byte(noDOB))
+		require.Equal(t, "AA", p.Code, p.Err)
+		require.Empty(t, withdrawn(egfrRows(t, p.Enriched)))
+	})
+
+	t.Run("FHIR: another specimen at the same time is not withdrawn", func(t *testing.T) {
+		e := newEnv(t, withRecord)
+		day := "2024-06-03"
+		p := e.h.Handle(ctx, fhir.EndpointBundle, fhirBundle("S1", "female", "1970-03-10", day,
+			fhirObs{id: "morning", code: "2160-0", status: "final", value: "1.0", unit: "mg/dL"}))
+		require.Equal(t, 200, p.Status, string(p.Body))
+		p = e.h.Handle(ctx, fhir.EndpointBundle, fhirBundle("S2", "female", "1970-03-10", day,
+			fhirObs{id: "evening", code: "2160-0", status: "final", value: `"haemolysed"`}))
+		require.Equal(t, 200, p.Status, string(p.Body))
+		for _, o := range egfrObservations(t, p.Body) {
+			require.True(t, o.HasValue, "nothing of the morning specimen is withdrawn: %+v", o)
+		}
+	})
+
+	t.Run("two OBR segments sharing a filler number keep their own records", func(t *testing.T) {
+		e := newEnv(t, withRecord, withPolicy("ekfc", ""))
+		msg := func(control string) []byte {
+			return []byte(strings.Join([]string{
+				`MSH|^~\&|NVLAB|NVL|EHR|NVH|20240603093000||ORU^R01^ORU_R01|` + control + `|P|2.5.1`,
+				`PID|1||NVL-900001^^^NVL^MR||Whitlock^Pell||19700310|F`,
+				`OBR|1|ORD9001|NVL9001|RENAL^Renal^L|||20240603080000`,
+				f(obxCreatinine, "F"), f(obxCystatinC, "F"),
+				`OBR|2|ORD9001|NVL9001|RENAL^Renal^L|||20240603080000`,
+				f(obxCreatinine, "F"),
+			}, "\r") + "\r")
+		}
+		p := e.hl7.Handle(ctx, msg("T1"))
+		require.Equal(t, "AA", p.Code, p.Err)
+		p = e.hl7.Handle(ctx, msg("T2"))
+		require.Equal(t, "AA", p.Code, p.Err)
+		require.Empty(t, withdrawn(egfrRows(t, p.Enriched)), "the second OBR does not withdraw the first one's combined eGFR")
+	})
+}

@@ -306,6 +306,10 @@ func clean(s string) string {
 	return strings.ToValidUTF8(strings.ReplaceAll(s, "\x00", ""), "\uFFFD")
 }
 
+// StorageKey is the form in which a key is stored (see Commit): callers
+// that look a stored key up must use it too.
+func StorageKey(s string) string { return key(s) }
+
 // key makes an identifying key storable without merging different keys: a
 // key that clean would change is replaced by its hash.
 func key(s string) string {

@@ -11,6 +11,7 @@ CREATE TABLE reported_observations (
     equation    text NOT NULL,
     assumed_sex text NOT NULL,
     external_id text NOT NULL,
+    inputs      text NOT NULL,
     active      integer NOT NULL CHECK (active IN (0, 1)),
     message_id  text NOT NULL,
     updated_at  timestamptz NOT NULL

@@ -11,6 +11,7 @@ CREATE TABLE reported_observations (
     equation    TEXT NOT NULL,
     assumed_sex TEXT NOT NULL,
     external_id TEXT NOT NULL,
+    inputs      TEXT NOT NULL,
     active      INTEGER NOT NULL CHECK (active IN (0, 1)),
     message_id  TEXT NOT NULL,
     updated_at  TEXT NOT NULL
