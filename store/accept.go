@@ -189,19 +189,15 @@ func (s *sqlStore) commitBatch(ctx context.Context, subs []*Submission) ([]accep
 // savepoint. A submission that fails is rolled back to its savepoint and
 // the others go on.
 func (s *sqlStore) commitEach(ctx context.Context, subs []*Submission) (_ []acceptResult, err error) {
-	tx, err := s.w.BeginTx(ctx, nil)
+	tx, head, err := s.beginWrite(ctx)
 	if err != nil {
-		return nil, dbErr("accept: begin", err)
+		return nil, err
 	}
 	defer func() {
 		if err != nil {
 			tx.Rollback()
 		}
 	}()
-	var head ChainHead
-	if err := tx.QueryRowContext(ctx, s.d.lockHead).Scan(&head.LastID, &head.LastHash); err != nil {
-		return nil, dbErr("accept: lock chain head", err)
-	}
 	start := head
 	now := s.now()
 	results := make([]acceptResult, len(subs))
@@ -227,13 +223,8 @@ func (s *sqlStore) commitEach(ctx context.Context, subs []*Submission) (_ []acce
 			return nil, dbErr("accept: release savepoint", err)
 		}
 	}
-	if head != start {
-		if _, err := tx.ExecContext(ctx, s.d.q(`UPDATE chain_head SET last_id = ?, last_hash = ?`), head.LastID, head.LastHash); err != nil {
-			return nil, dbErr("accept: update chain head", err)
-		}
-	}
-	if err := tx.Commit(); err != nil {
-		return nil, dbErr("accept: commit", err)
+	if err := s.finishWrite(ctx, tx, start, head); err != nil {
+		return nil, err
 	}
 	return results, nil
 }

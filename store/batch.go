@@ -32,19 +32,15 @@ func repeatedKeys(subs []*Submission) bool {
 // instead of several per submission. Any error rolls everything back; the
 // caller then retries submission by submission.
 func (s *sqlStore) commitFast(ctx context.Context, subs []*Submission) (_ []acceptResult, err error) {
-	tx, err := s.w.BeginTx(ctx, nil)
+	tx, head, err := s.beginWrite(ctx)
 	if err != nil {
-		return nil, dbErr("accept: begin", err)
+		return nil, err
 	}
 	defer func() {
 		if err != nil {
 			tx.Rollback()
 		}
 	}()
-	var head ChainHead
-	if err := tx.QueryRowContext(ctx, s.d.lockHead).Scan(&head.LastID, &head.LastHash); err != nil {
-		return nil, dbErr("accept: lock chain head", err)
-	}
 	start := head
 	now := s.now()
 	results := make([]acceptResult, len(subs))
@@ -140,13 +136,8 @@ func (s *sqlStore) commitFast(ctx context.Context, subs []*Submission) (_ []acce
 			}
 		}
 	}
-	if head != start {
-		if _, err := tx.ExecContext(ctx, s.d.q(`UPDATE chain_head SET last_id = ?, last_hash = ?`), head.LastID, head.LastHash); err != nil {
-			return nil, dbErr("accept: update chain head", err)
-		}
-	}
-	if err := tx.Commit(); err != nil {
-		return nil, dbErr("accept: commit", err)
+	if err := s.finishWrite(ctx, tx, start, head); err != nil {
+		return nil, err
 	}
 	return results, nil
 }
@@ -194,4 +185,34 @@ func queryEach(ctx context.Context, tx *sql.Tx, query string, args []any, scan f
 		}
 	}
 	return rows.Err()
+}
+
+// beginWrite starts a write transaction and locks the chain head in it
+// (FOR UPDATE on PostgreSQL; SQLite's write transaction serialises
+// writers), so that every writer appends to one chain.
+func (s *sqlStore) beginWrite(ctx context.Context) (*sql.Tx, ChainHead, error) {
+	tx, err := s.w.BeginTx(ctx, nil)
+	if err != nil {
+		return nil, ChainHead{}, dbErr("accept: begin", err)
+	}
+	var head ChainHead
+	if err := tx.QueryRowContext(ctx, s.d.lockHead).Scan(&head.LastID, &head.LastHash); err != nil {
+		tx.Rollback()
+		return nil, ChainHead{}, dbErr("accept: lock chain head", err)
+	}
+	return tx, head, nil
+}
+
+// finishWrite moves the chain head from start to head, if it moved, and
+// commits.
+func (s *sqlStore) finishWrite(ctx context.Context, tx *sql.Tx, start, head ChainHead) error {
+	if head != start {
+		if _, err := tx.ExecContext(ctx, s.d.q(`UPDATE chain_head SET last_id = ?, last_hash = ?`), head.LastID, head.LastHash); err != nil {
+			return dbErr("accept: update chain head", err)
+		}
+	}
+	if err := tx.Commit(); err != nil {
+		return dbErr("accept: commit", err)
+	}
+	return nil
 }
