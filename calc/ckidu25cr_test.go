@@ -14,7 +14,7 @@ import (
 const ckidU25RefSource = "Pierce 2021 reference code (R/SAS/Stata), published examples"
 
 func TestCKiDU25CrMetadata(t *testing.T) {
-	e := pedsEquation(t, "ckid-u25-cr")
+	e := registered(t, "ckid-u25-cr")
 	require.Equal(t, "1", e.Version)
 	require.Empty(t, e.LOINC)        // no equation-specific LOINC code; policy uses generic 69405-9 (common practice)
 	require.Equal(t, 1.0, e.MinAge)  // Pierce 2021: ages 1-25
@@ -24,7 +24,7 @@ func TestCKiDU25CrMetadata(t *testing.T) {
 }
 
 func TestCKiDU25CrChecks(t *testing.T) {
-	e := pedsEquation(t, "ckid-u25-cr")
+	e := registered(t, "ckid-u25-cr")
 	tests := []struct {
 		name string
 		in   calc.Inputs
@@ -50,7 +50,7 @@ func TestCKiDU25CrKEndPoints(t *testing.T) {
 	// Pierce 2021 abstract: "For males, K ranged from 35.7 for one-year-olds
 	// to 50.8 for those 18 and older. For females, the values of K ranged
 	// from 33.1 to 41.4." With height 1 m and Scr 1 mg/dL the estimate is K.
-	e := pedsEquation(t, "ckid-u25-cr")
+	e := registered(t, "ckid-u25-cr")
 	for _, tt := range []struct {
 		sex  calc.Sex
 		age  float64
@@ -66,7 +66,7 @@ func TestCKiDU25CrKEndPoints(t *testing.T) {
 }
 
 func BenchmarkCKiDU25Cr(b *testing.B) {
-	e := pedsEquation(b, "ckid-u25-cr")
+	e := registered(b, "ckid-u25-cr")
 	in := calc.Inputs{AgeYears: 11, Sex: calc.SexMale, HeightCM: 120, CreatinineMgDL: 0.9}
 	for b.Loop() {
 		if _, _, err := e.Compute(in); err != nil {

@@ -9,7 +9,7 @@ import (
 )
 
 func TestCKiDU25CrCysMetadata(t *testing.T) {
-	e := pedsEquation(t, "ckid-u25-crcys")
+	e := registered(t, "ckid-u25-crcys")
 	require.Equal(t, "1", e.Version)
 	require.Empty(t, e.LOINC) // no equation-specific LOINC code; policy uses generic 69405-9 (common practice)
 	require.Equal(t, 1.0, e.MinAge)
@@ -19,7 +19,7 @@ func TestCKiDU25CrCysMetadata(t *testing.T) {
 }
 
 func TestCKiDU25CrCysChecks(t *testing.T) {
-	e := pedsEquation(t, "ckid-u25-crcys")
+	e := registered(t, "ckid-u25-crcys")
 	tests := []struct {
 		name string
 		in   calc.Inputs
@@ -32,7 +32,7 @@ func TestCKiDU25CrCysChecks(t *testing.T) {
 		{"man 20 y 1.81 m Scr 2.1 CysC 1.8", calc.Inputs{AgeYears: 20, Sex: calc.SexMale, HeightCM: 181, CreatinineMgDL: 2.1, CystatinCMgL: 1.8}, 43.3},
 		{"woman 20 y 1.81 m Scr 2.1 CysC 1.8", calc.Inputs{AgeYears: 20, Sex: calc.SexFemale, HeightCM: 181, CreatinineMgDL: 2.1, CystatinCMgL: 1.8}, 36.8},
 	}
-	cr, cys := pedsEquation(t, "ckid-u25-cr"), pedsEquation(t, "ckid-u25-cys")
+	cr, cys := registered(t, "ckid-u25-cr"), registered(t, "ckid-u25-cys")
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			v, steps := pedsCompute(t, e, tt.in)
@@ -55,7 +55,7 @@ func TestCKiDU25CrCysChecks(t *testing.T) {
 }
 
 func BenchmarkCKiDU25CrCys(b *testing.B) {
-	e := pedsEquation(b, "ckid-u25-crcys")
+	e := registered(b, "ckid-u25-crcys")
 	in := calc.Inputs{AgeYears: 15, Sex: calc.SexMale, HeightCM: 160, CreatinineMgDL: 1.9, CystatinCMgL: 1.6}
 	for b.Loop() {
 		if _, _, err := e.Compute(in); err != nil {

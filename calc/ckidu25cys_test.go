@@ -9,7 +9,7 @@ import (
 )
 
 func TestCKiDU25CysMetadata(t *testing.T) {
-	e := pedsEquation(t, "ckid-u25-cys")
+	e := registered(t, "ckid-u25-cys")
 	require.Equal(t, "1", e.Version)
 	require.Empty(t, e.LOINC)                                  // no equation-specific LOINC code; policy uses generic 69405-9 (common practice)
 	require.Equal(t, 1.0, e.MinAge)                            // Pierce 2021: ages 1-25
@@ -19,7 +19,7 @@ func TestCKiDU25CysMetadata(t *testing.T) {
 }
 
 func TestCKiDU25CysChecks(t *testing.T) {
-	e := pedsEquation(t, "ckid-u25-cys")
+	e := registered(t, "ckid-u25-cys")
 	tests := []struct {
 		name string
 		in   calc.Inputs
@@ -47,7 +47,7 @@ func TestCKiDU25CysChecks(t *testing.T) {
 }
 
 func BenchmarkCKiDU25Cys(b *testing.B) {
-	e := pedsEquation(b, "ckid-u25-cys")
+	e := registered(b, "ckid-u25-cys")
 	in := calc.Inputs{AgeYears: 15, Sex: calc.SexFemale, CystatinCMgL: 1.6}
 	for b.Loop() {
 		if _, _, err := e.Compute(in); err != nil {

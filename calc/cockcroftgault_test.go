@@ -9,15 +9,8 @@ import (
 	"filtrate/calc"
 )
 
-func cgEquation(tb testing.TB) calc.Equation {
-	tb.Helper()
-	e, ok := calc.Builtin().Latest("cockcroft-gault")
-	require.True(tb, ok, "cockcroft-gault is registered")
-	return e
-}
-
 func TestCockcroftGaultMetadata(t *testing.T) {
-	e := cgEquation(t)
+	e := registered(t, "cockcroft-gault")
 	require.Equal(t, "1", e.Version)
 	// LOINC 35591-7 "Creatinine renal clearance predicted by Cockcroft-Gault
 	// formula": LOINC table extracts (long name and short name "Creat Cl
@@ -38,7 +31,7 @@ func TestCockcroftGaultMetadata(t *testing.T) {
 }
 
 func TestCockcroftGaultChecks(t *testing.T) {
-	e := cgEquation(t)
+	e := registered(t, "cockcroft-gault")
 	tests := []struct {
 		name    string
 		in      calc.Inputs
@@ -121,7 +114,7 @@ func TestCockcroftGaultChecks(t *testing.T) {
 }
 
 func TestCockcroftGaultRefuses(t *testing.T) {
-	e := cgEquation(t)
+	e := registered(t, "cockcroft-gault")
 	ok := calc.Inputs{AgeYears: 50, Sex: calc.SexMale, WeightKG: 70, CreatinineMgDL: 1}
 	tests := []struct {
 		name   string
@@ -156,7 +149,7 @@ func TestCockcroftGaultRefuses(t *testing.T) {
 // that the female value is 0.85 × the male value (Cockcroft & Gault 1976:
 // "15% less in females"), and that the last step is the returned value.
 func TestCockcroftGaultProperties(t *testing.T) {
-	e := cgEquation(t)
+	e := registered(t, "cockcroft-gault")
 	creats := []float64{0.1, 0.3, 0.5, 0.7, 0.9, 1.2, 2, 4, 8, 15, 25}
 	for _, age := range []float64{18, 30, 45, 60, 75, 90, 105, 120, 139} {
 		for _, wt := range []float64{0.5, 30, 60, 90, 150, 250, 400} {
@@ -184,7 +177,7 @@ func TestCockcroftGaultProperties(t *testing.T) {
 }
 
 func BenchmarkCockcroftGault(b *testing.B) {
-	e := cgEquation(b)
+	e := registered(b, "cockcroft-gault")
 	in := calc.Inputs{AgeYears: 67, Sex: calc.SexFemale, WeightKG: 64, CreatinineMgDL: 1.1}
 	for b.Loop() {
 		if _, _, err := e.Compute(in); err != nil {

@@ -9,15 +9,8 @@ import (
 	"filtrate/calc"
 )
 
-func timedUrineEquation(tb testing.TB) calc.Equation {
-	tb.Helper()
-	e, ok := calc.Builtin().Latest("crcl-timed-urine")
-	require.True(tb, ok, "crcl-timed-urine is registered")
-	return e
-}
-
 func TestTimedUrineMetadata(t *testing.T) {
-	e := timedUrineEquation(t)
+	e := registered(t, "crcl-timed-urine")
 	require.Equal(t, "1", e.Version)
 	// LOINC 2164-2 "Creatinine renal clearance in 24 hour Urine and Serum or
 	// Plasma": FHIR implementation guides and a LOINC table extract (short name
@@ -39,7 +32,7 @@ func TestTimedUrineMetadata(t *testing.T) {
 // CrCl = U × V / (P × t) (Tietz Textbook of Clinical Chemistry, kidney
 // function chapter; edition from memory).
 func TestTimedUrineChecks(t *testing.T) {
-	e := timedUrineEquation(t)
+	e := registered(t, "crcl-timed-urine")
 	tests := []struct {
 		name     string
 		u, v     float64 // urine creatinine mg/dL, urine volume mL
@@ -76,7 +69,7 @@ func TestTimedUrineChecks(t *testing.T) {
 // share the creatinine factor, so µmol/L gives the same clearance as mg/dL,
 // and a collection stated in hours gives the same as one in minutes.
 func TestTimedUrineUnitsCancel(t *testing.T) {
-	e := timedUrineEquation(t)
+	e := registered(t, "crcl-timed-urine")
 	conv := func(a calc.Analyte, v float64, unit string) float64 {
 		t.Helper()
 		c, _, err := calc.ToCanonical(a, v, unit)
@@ -95,7 +88,7 @@ func TestTimedUrineUnitsCancel(t *testing.T) {
 }
 
 func TestTimedUrineRefuses(t *testing.T) {
-	e := timedUrineEquation(t)
+	e := registered(t, "crcl-timed-urine")
 	ok := calc.Inputs{UrineCreatinineMgDL: 100, UrineVolumeML: 1500, CreatinineMgDL: 1, CollectionMin: 1440}
 	tests := []struct {
 		name   string
@@ -127,7 +120,7 @@ func TestTimedUrineRefuses(t *testing.T) {
 // and positive, rises with urine creatinine and volume, falls with plasma
 // creatinine and collection time, and that sex does not change it.
 func TestTimedUrineProperties(t *testing.T) {
-	e := timedUrineEquation(t)
+	e := registered(t, "crcl-timed-urine")
 	grid := []float64{1, 10, 50, 100, 300, 1000}
 	plasma := []float64{0.1, 0.5, 1, 3, 10, 25}
 	times := []float64{60, 240, 720, 1440, 2880}
@@ -161,7 +154,7 @@ func TestTimedUrineProperties(t *testing.T) {
 }
 
 func BenchmarkCrClTimedUrine(b *testing.B) {
-	e := timedUrineEquation(b)
+	e := registered(b, "crcl-timed-urine")
 	in := calc.Inputs{UrineCreatinineMgDL: 96, UrineVolumeML: 1650, CreatinineMgDL: 1.05, CollectionMin: 1440}
 	for b.Loop() {
 		if _, _, err := e.Compute(in); err != nil {

@@ -10,7 +10,7 @@ import (
 )
 
 func TestEKFCCrMetadata(t *testing.T) {
-	e := pedsEquation(t, "ekfc-cr")
+	e := registered(t, "ekfc-cr")
 	require.Equal(t, "1", e.Version)
 	require.Empty(t, e.LOINC)       // no equation-specific LOINC code; policy uses generic 69405-9 (common practice)
 	require.Equal(t, 2.0, e.MinAge) // Pottel 2021: developed and validated from age 2 to 100
@@ -21,7 +21,7 @@ func TestEKFCCrMetadata(t *testing.T) {
 }
 
 func TestEKFCCrChecks(t *testing.T) {
-	e := pedsEquation(t, "ekfc-cr")
+	e := registered(t, "ekfc-cr")
 	tests := []struct {
 		name   string
 		in     calc.Inputs
@@ -118,7 +118,7 @@ func TestEKFCCrComputesInMicromolPerLitre(t *testing.T) {
 	// µmol/L). Computing in µmol/L gives, for Scr/Q ≥ 1, (80/79.56)^1.132 − 1
 	// = +0.63 % (male) and (62/61.88)^1.132 − 1 = +0.22 % (female) relative
 	// to the mg/dL reading: hand computation.
-	e := pedsEquation(t, "ekfc-cr")
+	e := registered(t, "ekfc-cr")
 	for _, tt := range []struct {
 		sex   calc.Sex
 		qMgDL float64
@@ -143,7 +143,7 @@ func TestEKFCCrComputesInMicromolPerLitre(t *testing.T) {
 func TestEKFCCrStepsShowThePublishedCoefficients(t *testing.T) {
 	// An auditor redoes the arithmetic from the steps: the polynomial is
 	// printed with the coefficients as Pottel 2021 prints them.
-	e := pedsEquation(t, "ekfc-cr")
+	e := registered(t, "ekfc-cr")
 	_, steps := pedsCompute(t, e, calc.Inputs{AgeYears: 10, Sex: calc.SexMale, CreatinineMgDL: 0.5})
 	var formula string
 	for _, s := range steps {
@@ -162,7 +162,7 @@ func TestEKFCCrStepsShowThePublishedCoefficients(t *testing.T) {
 }
 
 func BenchmarkEKFCCr(b *testing.B) {
-	e := pedsEquation(b, "ekfc-cr")
+	e := registered(b, "ekfc-cr")
 	in := calc.Inputs{AgeYears: 16, Sex: calc.SexFemale, CreatinineMgDL: 0.7}
 	for b.Loop() {
 		if _, _, err := e.Compute(in); err != nil {

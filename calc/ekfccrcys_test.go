@@ -9,7 +9,7 @@ import (
 )
 
 func TestEKFCCrCysMetadata(t *testing.T) {
-	e := pedsEquation(t, "ekfc-crcys")
+	e := registered(t, "ekfc-crcys")
 	require.Equal(t, "1", e.Version)
 	require.Empty(t, e.LOINC)        // no equation-specific LOINC code; policy uses generic 69405-9 (common practice)
 	require.Equal(t, 18.0, e.MinAge) // the cystatin C part is validated from 18 (Pottel 2023)
@@ -19,7 +19,7 @@ func TestEKFCCrCysMetadata(t *testing.T) {
 }
 
 func TestEKFCCrCysChecks(t *testing.T) {
-	e := pedsEquation(t, "ekfc-crcys")
+	e := registered(t, "ekfc-crcys")
 	tests := []struct {
 		name    string
 		in      calc.Inputs
@@ -60,15 +60,15 @@ func TestEKFCCrCysChecks(t *testing.T) {
 			require.Equal(t, v, steps[len(steps)-1].Value, "last step is the result")
 
 			// The mean equals the mean of the registered component equations.
-			cr, _ := pedsCompute(t, pedsEquation(t, "ekfc-cr"), tt.in)
-			cys, _ := pedsCompute(t, pedsEquation(t, "ekfc-cys"), tt.in)
+			cr, _ := pedsCompute(t, registered(t, "ekfc-cr"), tt.in)
+			cys, _ := pedsCompute(t, registered(t, "ekfc-cys"), tt.in)
 			require.Equal(t, (cr+cys)/2, v)
 		})
 	}
 }
 
 func BenchmarkEKFCCrCys(b *testing.B) {
-	e := pedsEquation(b, "ekfc-crcys")
+	e := registered(b, "ekfc-crcys")
 	in := calc.Inputs{AgeYears: 60, Sex: calc.SexMale, CreatinineMgDL: 1.4, CystatinCMgL: 0.8}
 	for b.Loop() {
 		if _, _, err := e.Compute(in); err != nil {

@@ -9,7 +9,7 @@ import (
 )
 
 func TestEKFCCysMetadata(t *testing.T) {
-	e := pedsEquation(t, "ekfc-cys")
+	e := registered(t, "ekfc-cys")
 	require.Equal(t, "1", e.Version)
 	require.Empty(t, e.LOINC)        // no equation-specific LOINC code; policy uses generic 69405-9 (common practice)
 	require.Equal(t, 18.0, e.MinAge) // Pottel 2023: Q estimated and validated in adults
@@ -19,7 +19,7 @@ func TestEKFCCysMetadata(t *testing.T) {
 }
 
 func TestEKFCCysChecks(t *testing.T) {
-	e := pedsEquation(t, "ekfc-cys")
+	e := registered(t, "ekfc-cys")
 	tests := []struct {
 		name   string
 		in     calc.Inputs
@@ -81,7 +81,7 @@ func TestEKFCCysChecks(t *testing.T) {
 }
 
 func BenchmarkEKFCCys(b *testing.B) {
-	e := pedsEquation(b, "ekfc-cys")
+	e := registered(b, "ekfc-cys")
 	in := calc.Inputs{AgeYears: 70, CystatinCMgL: 1.2}
 	for b.Loop() {
 		if _, _, err := e.Compute(in); err != nil {

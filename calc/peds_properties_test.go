@@ -17,13 +17,6 @@ var pedsIDs = []string{
 	"schwartz-bedside",
 }
 
-func pedsEquation(tb testing.TB, id string) calc.Equation {
-	tb.Helper()
-	e, ok := calc.Builtin().Latest(id)
-	require.True(tb, ok, "%s is registered", id)
-	return e
-}
-
 func pedsCompute(tb testing.TB, e calc.Equation, in calc.Inputs) (float64, []calc.Step) {
 	tb.Helper()
 	v, steps, err := e.Compute(in)
@@ -71,7 +64,7 @@ var (
 
 func TestPedsAcceptedGridIsFiniteAndEndsWithTheResult(t *testing.T) {
 	for _, id := range pedsIDs {
-		e := pedsEquation(t, id)
+		e := registered(t, id)
 		sexes := []calc.Sex{calc.SexFemale, calc.SexMale}
 		crs, cyss, hts := []float64{0}, []float64{0}, []float64{0}
 		if e.Needs.Has(calc.NeedCreatinine) {
@@ -117,7 +110,7 @@ func TestPedsMonotonicInMarkers(t *testing.T) {
 	// strictly lower estimate: each equation is a decreasing power of the
 	// marker (Pottel 2021 and 2023; Pierce 2021; Schwartz 2009).
 	for _, id := range pedsIDs {
-		e := pedsEquation(t, id)
+		e := registered(t, id)
 		for _, age := range []float64{1, 2, 5, 11.9, 12, 15, 17.99, 18, 24.9, 25, 40, 41, 50, 70, 95} {
 			if age < e.MinAge || (e.MaxAge > 0 && age >= e.MaxAge) {
 				continue
@@ -189,7 +182,7 @@ func TestPedsCKiDU25BandEdges(t *testing.T) {
 		{"ckid-u25-cys", calc.SexFemale, 18, 68.3/(79.9*math.Pow(0.974, 6)) - 1, "79.9 × 0.974^6 = 68.218 → 68.3: +0.12 %"},
 	}
 	for _, tt := range tests {
-		e := pedsEquation(t, tt.id)
+		e := registered(t, tt.id)
 		in := calc.Inputs{Sex: tt.sex, CreatinineMgDL: 0.8, CystatinCMgL: 1.1, HeightCM: 150}
 		left, right := pedsLimits(t, e, in, tt.edge)
 		got := (right - left) / left
@@ -202,7 +195,7 @@ func TestPedsCKiDU25BandEdges(t *testing.T) {
 	}
 	// The mean equation inherits the edges of its parts; it is continuous
 	// at 12 and 15 for both sexes.
-	e := pedsEquation(t, "ckid-u25-crcys")
+	e := registered(t, "ckid-u25-crcys")
 	for _, sex := range []calc.Sex{calc.SexFemale, calc.SexMale} {
 		for _, edge := range []float64{12, 15} {
 			left, right := pedsLimits(t, e, calc.Inputs{Sex: sex, CreatinineMgDL: 0.8, CystatinCMgL: 1.1, HeightCM: 150}, edge)
@@ -216,7 +209,7 @@ func TestPedsEKFCContinuityAt40And50(t *testing.T) {
 	// estimate is continuous at 40; the cystatin C Q = 0.83 + 0.005 × (age −
 	// 50) equals 0.83 at 50.
 	for _, id := range []string{"ekfc-cr", "ekfc-cys", "ekfc-crcys"} {
-		e := pedsEquation(t, id)
+		e := registered(t, id)
 		for _, sex := range []calc.Sex{calc.SexFemale, calc.SexMale} {
 			for _, m := range []float64{0.5, 0.83, 1, 2.5} {
 				in := calc.Inputs{Sex: sex, CreatinineMgDL: m, CystatinCMgL: m}
@@ -232,7 +225,7 @@ func TestPedsEKFCContinuityAt40And50(t *testing.T) {
 func TestPedsEKFCContinuityAtRatioOne(t *testing.T) {
 	// Pottel 2021: α switches from −0.322 to −1.132 at Scr/Q = 1, where both
 	// powers equal 1, so the estimate is continuous in the marker there.
-	e := pedsEquation(t, "ekfc-cys")
+	e := registered(t, "ekfc-cys")
 	for _, age := range []float64{18, 40, 60, 80} {
 		q := 0.83
 		if age >= 50 {
@@ -242,7 +235,7 @@ func TestPedsEKFCContinuityAtRatioOne(t *testing.T) {
 		below, _ := pedsCompute(t, e, calc.Inputs{AgeYears: age, CystatinCMgL: math.Nextafter(q, 0)})
 		require.Less(t, pedsRelDiff(below, at), 1e-9, "age %g", age)
 	}
-	cr := pedsEquation(t, "ekfc-cr")
+	cr := registered(t, "ekfc-cr")
 	for _, sex := range []calc.Sex{calc.SexFemale, calc.SexMale} {
 		q := 62.0
 		if sex == calc.SexMale {
@@ -273,7 +266,7 @@ func TestPedsEKFCQStepAt25(t *testing.T) {
 		{calc.SexMale, 80.86454145832509, 80, 1 - 80/80.86454145832509, 1.2, 0.6},
 		{calc.SexFemale, 62.431233752648154, 62, 1 - 62/62.431233752648154, 1.0, 0.5},
 	}
-	e := pedsEquation(t, "ekfc-cr")
+	e := registered(t, "ekfc-cr")
 	for _, tt := range tests {
 		// Q itself, read from the steps.
 		_, steps := pedsCompute(t, e, calc.Inputs{AgeYears: 25, Sex: tt.sex, CreatinineMgDL: 1})
@@ -329,7 +322,7 @@ func TestPedsRefusals(t *testing.T) {
 		"age NaN":             func(in *calc.Inputs) { in.AgeYears = math.NaN() },
 	}
 	for _, id := range pedsIDs {
-		e := pedsEquation(t, id)
+		e := registered(t, id)
 		_, _, err := e.Compute(good)
 		require.NoError(t, err, id)
 		for name, mutate := range bad {

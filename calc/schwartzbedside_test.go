@@ -9,7 +9,7 @@ import (
 )
 
 func TestSchwartzBedsideMetadata(t *testing.T) {
-	e := pedsEquation(t, "schwartz-bedside")
+	e := registered(t, "schwartz-bedside")
 	require.Equal(t, "1", e.Version)
 	// LOINC 50384-7: long name from LOINC table extracts (parts: Glomerular
 	// filtration rate/1.73 sq M.predicted, ArVRat, Pt, Ser/Plas/Bld, Qn,
@@ -24,7 +24,7 @@ func TestSchwartzBedsideMetadata(t *testing.T) {
 }
 
 func TestSchwartzBedsideChecks(t *testing.T) {
-	e := pedsEquation(t, "schwartz-bedside")
+	e := registered(t, "schwartz-bedside")
 	tests := []struct {
 		name   string
 		in     calc.Inputs
@@ -72,7 +72,7 @@ func TestSchwartzBedsideChecks(t *testing.T) {
 }
 
 func BenchmarkSchwartzBedside(b *testing.B) {
-	e := pedsEquation(b, "schwartz-bedside")
+	e := registered(b, "schwartz-bedside")
 	in := calc.Inputs{AgeYears: 8, HeightCM: 120, CreatinineMgDL: 0.5}
 	for b.Loop() {
 		if _, _, err := e.Compute(in); err != nil {
