@@ -166,6 +166,8 @@ func TestHL7EndToEnd(t *testing.T) {
 	ds.wait(t, 1)
 	fwd := string(ds.messages()[0])
 	require.Contains(t, fwd, "|98979-8^", "the eGFR OBX is added")
+	// CKD-EPI 2021 (Inker, N Engl J Med 2021), woman of 54 with 0.92 mg/dL,
+	// hand computation: 142 × (0.92/0.7)^−1.200 × 0.9938^54 × 1.012 = 74.0.
 	require.Contains(t, fwd, "|ckd-epi-2021-cr|74|mL/min/{1.73_m2}^^UCUM|", "OBX-4 names the equation")
 	require.Contains(t, fwd, "\rZXT|1|site specific|kept\r", "Z-segments pass unchanged")
 	require.True(t, strings.HasPrefix(fwd, "MSH|^~\\&|LIS|LAB|EHR|HOSP|20261130081500||ORU^R01^ORU_R01|E1|"), "the original MSH is kept")
